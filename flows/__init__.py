@@ -1,0 +1,1 @@
+"""The verbs a user runs or schedules: train, promote, rollback, apply."""

@@ -1,0 +1,65 @@
+"""The row ledger: where every input row went. rows in = rows used + rows quarantined, always."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+
+class LedgerMismatch(RuntimeError):
+    """The counts do not add up: some row was lost or counted twice."""
+
+
+@dataclass
+class LedgerStep:
+    """One step of ingestion or cleaning and what it did.
+
+    ``action`` is ``quarantine`` (rows removed, each with this reason), ``fill`` (values filled in place),
+    or ``report`` (rows flagged but kept, e.g. nulls a conditional fill was not allowed to fill).
+    """
+
+    step: str
+    action: str
+    rows: int
+    detail: str = ""
+
+
+@dataclass
+class Ledger:
+    rows_in: int
+    files: list[str] = field(default_factory=list)
+    steps: list[LedgerStep] = field(default_factory=list)
+    rows_quarantined: int = 0
+
+    def record(self, step: str, action: str, rows: int, detail: str = "") -> None:
+        self.steps.append(LedgerStep(step, action, int(rows), detail))
+
+    @property
+    def rows_used(self) -> int:
+        return self.rows_in - self.rows_quarantined
+
+    def quarantined_by_reason(self) -> dict[str, int]:
+        return {s.step: s.rows for s in self.steps if s.action == "quarantine"}
+
+    def check(self, rows_used: int, rows_quarantined: int) -> None:
+        """Fail loudly unless the table that goes on and the quarantine account for every input row."""
+        if rows_quarantined != self.rows_quarantined or rows_used + rows_quarantined != self.rows_in:
+            raise LedgerMismatch(
+                f"row ledger does not add up: {self.rows_in} in, {rows_used} used + "
+                f"{rows_quarantined} quarantined (ledger says {self.rows_quarantined} quarantined)"
+            )
+
+    def to_dict(self) -> dict:
+        return {
+            "rows_in": self.rows_in,
+            "rows_used": self.rows_used,
+            "rows_quarantined": self.rows_quarantined,
+            "files": self.files,
+            "steps": [asdict(s) for s in self.steps],
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> Ledger:
+        ledger = cls(rows_in=int(data["rows_in"]), files=list(data.get("files", [])))
+        ledger.steps = [LedgerStep(**s) for s in data.get("steps", [])]
+        ledger.rows_quarantined = int(data["rows_quarantined"])
+        return ledger

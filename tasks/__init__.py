@@ -1,0 +1,1 @@
+"""One step each: Prefect tasks around plain functions that tests call directly."""
