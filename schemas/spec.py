@@ -6,6 +6,7 @@ import difflib
 import hashlib
 import json
 import math
+import typing
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -272,25 +273,36 @@ def _field_names(model: type[BaseModel]) -> list[str]:
     return list(model.model_fields)
 
 
+def _models_in(annotation: Any) -> list[type[BaseModel]]:
+    """Every pydantic model a field's annotation can hold (through list, Optional, Annotated and unions)."""
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return [annotation]
+    found: list[type[BaseModel]] = []
+    for inner in typing.get_args(annotation):
+        found.extend(_models_in(inner))
+    return found
+
+
 def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
     """The model class that holds the key at ``loc`` (for 'did you mean' hints)."""
-    model: Any = Spec
+    model: type[BaseModel] | None = Spec
+    pending: list[type[BaseModel]] = []
     for part in loc[:-1]:
-        if isinstance(part, int) or model is None:
+        if isinstance(part, int):
             continue
-        field = model.model_fields.get(part)
-        if field is None:
-            # A discriminated rule: the part is the tag, e.g. 'fill'.
-            model = {"range": RangeRule, "fill": FillRule, "drop_missing": DropMissingRule}.get(part)
-            continue
-        annotation = field.annotation
-        candidates = [annotation, *getattr(annotation, "__args__", ())]
-        model = next((c for c in candidates if isinstance(c, type) and issubclass(c, BaseModel)), None)
-        if model is None:
-            for c in candidates:
-                for inner in getattr(c, "__args__", ()):
-                    if isinstance(inner, type) and issubclass(inner, BaseModel):
-                        model = inner
+        if pending:  # a discriminated union: this part is the tag, e.g. 'fill'
+            tagged = [m for m in pending if "kind" in m.model_fields
+                      and part in typing.get_args(m.model_fields["kind"].annotation)]
+            model, pending = (tagged[0] if tagged else None), []
+            if model is not None:
+                continue
+        if model is None or part not in model.model_fields:
+            return None
+        options = _models_in(model.model_fields[part].annotation)
+        if len(options) == 1:
+            model = options[0]
+        else:
+            model, pending = None, options
     return model
 
 

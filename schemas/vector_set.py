@@ -96,3 +96,8 @@ class VectorSet:
             vocabularies[col] = Vocabulary.load(folder / "vocabulary" / f"{stem}.json")
             vectors[col] = np.load(folder / "vectors" / f"{stem}.npy", allow_pickle=False)
         return cls(vocabularies, vectors, meta)
+
+
+def component_names(column: str, dimension: int) -> list[str]:
+    """Names of the feature columns that carry a column's vector components."""
+    return [f"{column}__vec{i}" for i in range(dimension)]

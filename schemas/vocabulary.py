@@ -40,7 +40,9 @@ class Vocabulary:
         if not self.categories or self.categories[0] != UNKNOWN:
             raise ValueError(f"vocabulary of {self.column!r}: id 0 must be {UNKNOWN!r}")
         if len(self.categories) != len(self.counts):
-            raise ValueError(f"vocabulary of {self.column!r}: {len(self.categories)} categories, {len(self.counts)} counts")
+            raise ValueError(
+                f"vocabulary of {self.column!r}: {len(self.categories)} categories, {len(self.counts)} counts"
+            )
         if len(set(self.categories)) != len(self.categories):
             raise ValueError(f"vocabulary of {self.column!r}: duplicate categories")
         self._index = pd.Index(self.categories[1:], dtype="string")

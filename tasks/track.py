@@ -1,0 +1,178 @@
+"""Tracking: one MLflow run holds a vector set with everything that made it; the run becomes a registered version."""
+
+from __future__ import annotations
+
+import getpass
+import json
+import math
+import shutil
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import mlflow
+import mlflow.pyfunc
+import yaml
+from mlflow.entities import Metric, Param
+from prefect import task
+from prefect.transactions import get_transaction
+
+import entivec
+from entivec.schemas.spec import Spec
+from entivec.schemas.vector_set import VectorSet
+from entivec.tasks import registry
+from entivec.tasks.lookup_model import VectorLookupModel, signature_for
+
+# The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
+LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
+MAX_PARAM_LENGTH = 500
+
+
+def operator() -> str:
+    try:
+        return getpass.getuser()
+    except Exception:  # no user database entry (some containers)
+        return "unknown"
+
+
+def now_iso() -> str:
+    return datetime.now(UTC).isoformat(timespec="seconds")
+
+
+def _flatten(prefix: str, value: Any, out: dict[str, str]) -> None:
+    if isinstance(value, dict):
+        for key, inner in value.items():
+            _flatten(f"{prefix}.{key}" if prefix else str(key), inner, out)
+    else:
+        text = json.dumps(value) if isinstance(value, (list, bool)) or value is None else str(value)
+        out[prefix] = text[:MAX_PARAM_LENGTH]
+
+
+def spec_params(spec: Spec) -> dict[str, str]:
+    """The spec as flat run parameters (rules and columns as JSON); the whole file is an artifact too."""
+    out: dict[str, str] = {}
+    _flatten("", spec.model_dump(mode="json"), out)
+    return out
+
+
+def _finite(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def record_run(
+    *,
+    spec: Spec,
+    bundle: Path,
+    fingerprint: dict,
+    ledger: dict,
+    history: list[dict],
+    metrics: dict[str, float],
+    summary: str,
+) -> str:
+    """Log a finished train run: parameters, per-epoch and final metrics, tags, and the bundle as artifacts.
+
+    ``bundle`` is a local folder laid out by the flow (spec, ledger, quarantine, vector_set/, network/,
+    evidence/, plots/, summary.md). Returns the run id. A failure marks the run FAILED, never FINISHED.
+    """
+    c = registry.client()
+    experiment_id = registry.experiment_for(spec.name)
+    run = c.create_run(
+        experiment_id,
+        run_name=f"train {spec.name} {datetime.now(UTC):%Y-%m-%d %H:%M}",
+        tags={
+            "mlflow.user": operator(),
+            "mlflow.source.name": "entivec train",
+            f"{registry.TAG_PREFIX}kind": "train",
+            f"{registry.TAG_PREFIX}data_fingerprint": fingerprint["sha256"],
+            f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(),
+            f"{registry.TAG_PREFIX}code_version": entivec.__version__,
+        },
+    )
+    run_id = run.info.run_id
+    try:
+        params = [Param(k, v) for k, v in spec_params(spec).items()]
+        for start in range(0, len(params), 90):
+            c.log_batch(run_id, params=params[start : start + 90])
+        stamp = int(datetime.now(UTC).timestamp() * 1000)
+        series = [
+            Metric(f"epoch_{key}", float(h[key]), stamp, int(h["epoch"]))
+            for h in history
+            for key in ("train_loss", "valid_loss", "rows_per_second")
+            if _finite(h.get(key))
+        ]
+        finals = [Metric(k, float(v), stamp, 0) for k, v in metrics.items() if _finite(v)]
+        counts = [
+            Metric(f"rows_{k}", float(ledger[k]), stamp, 0) for k in ("rows_in", "rows_used", "rows_quarantined")
+        ]
+        everything = series + finals + counts
+        for start in range(0, len(everything), 900):
+            c.log_batch(run_id, metrics=everything[start : start + 900])
+        c.set_tag(run_id, "mlflow.note.content", summary)
+        c.log_artifacts(run_id, str(bundle))
+    except BaseException:
+        c.set_terminated(run_id, status="FAILED")
+        raise
+    c.set_terminated(run_id, status="FINISHED")
+    return run_id
+
+
+def register_version(
+    *, spec: Spec, run_id: str, vector_set_folder: Path, version_tags: dict[str, str]
+) -> str:
+    """Register the run's vector set as a new version of ``spec.name`` (as a pyfunc lookup model)."""
+    registry.client()
+    vector_set = VectorSet.load(vector_set_folder)
+    with mlflow.start_run(run_id=run_id):
+        info = mlflow.pyfunc.log_model(
+            name="lookup_model",
+            python_model=VectorLookupModel(),
+            artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
+            signature=signature_for(vector_set),
+            pip_requirements=LOOKUP_REQUIREMENTS,
+            registered_model_name=spec.name,
+        )
+    version = str(info.registered_model_version)
+    c = registry.client()
+    for key, value in version_tags.items():
+        c.set_model_version_tag(spec.name, version, key, value)
+    return version
+
+
+@task(name="record-run", retries=2, retry_delay_seconds=2)
+def record_run_task(**kwargs) -> str:
+    return record_run(**kwargs)
+
+
+@task(name="register-version")
+def register_version_task(*, spec: Spec, run_id: str, vector_set_folder: Path, version_tags: dict[str, str]) -> str:
+    version = register_version(
+        spec=spec, run_id=run_id, vector_set_folder=vector_set_folder, version_tags=version_tags
+    )
+    transaction = get_transaction()
+    if transaction is not None:  # what the rollback hook needs to undo this step
+        transaction.set("name", spec.name)
+        transaction.set("version", version)
+    return version
+
+
+@register_version_task.on_rollback
+def _unregister(transaction) -> None:
+    """Undo a registration whose later steps failed: no half-registered version stays behind."""
+    version = transaction.get("version", None)
+    name = transaction.get("name", None)
+    if version and name:
+        registry.client().delete_model_version(name, version)
+
+
+def write_spec_copy(spec: Spec, source_text: str | None, folder: Path) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    if source_text is not None:
+        (folder / "spec.yaml").write_text(source_text, encoding="utf-8")
+    (folder / "spec.resolved.yaml").write_text(
+        yaml.safe_dump(spec.model_dump(mode="json"), sort_keys=False), encoding="utf-8"
+    )
+
+
+def copy_into(src: Path, dst: Path) -> None:
+    dst.parent.mkdir(parents=True, exist_ok=True)
+    shutil.copy2(src, dst)

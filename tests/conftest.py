@@ -1,0 +1,43 @@
+"""Test-session set-up: private Prefect and MLflow state, quiet services, one Prefect test server per session."""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+# Before anything imports prefect or mlflow: all state of this test session lives in one temporary folder.
+_SESSION_HOME = Path(tempfile.mkdtemp(prefix="entivec-tests-"))
+os.environ["ENTIVEC_HOME"] = str(_SESSION_HOME)
+os.environ["PREFECT_HOME"] = str(_SESSION_HOME / "prefect")
+os.environ.pop("PREFECT_API_URL", None)
+os.environ.pop("MLFLOW_TRACKING_URI", None)
+for key, value in {
+    "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
+    "PREFECT_LOGGING_LEVEL": "WARNING",
+    "MLFLOW_DISABLE_TELEMETRY": "true",
+    "DO_NOT_TRACK": "true",
+}.items():
+    os.environ[key] = value
+
+import pytest  # noqa: E402
+
+
+@pytest.fixture(scope="session")
+def prefect_server():
+    """One temporary Prefect server for every test that runs a real flow."""
+    from prefect.testing.utilities import prefect_test_harness
+
+    with prefect_test_harness(server_startup_timeout=90):
+        yield
+
+
+@pytest.fixture
+def entivec_home(tmp_path, monkeypatch):
+    """A fresh project folder with its own SQLite MLflow store, for tests that register versions."""
+    home = tmp_path / "home"
+    home.mkdir()
+    monkeypatch.setenv("ENTIVEC_HOME", str(home))
+    monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
+    return home
