@@ -7,7 +7,6 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
 from prefect import flow, task
 from prefect.transactions import transaction
 
@@ -16,7 +15,7 @@ from entivec.settings import project_home
 from entivec.tasks import registry, targets
 from entivec.tasks.bundle import BundleInputs, write_bundle_task
 from entivec.tasks.crossfit import cross_fit_vectors_task
-from entivec.tasks.evaluate import evaluate_downstream
+from entivec.tasks.evaluate import capped_rows, evaluate_downstream, vectors_for_ids
 from entivec.tasks.ingest import clean, ingest, split
 from entivec.tasks.ingest import data_fingerprint as fingerprint_of
 from entivec.tasks.metrics import task_metrics
@@ -57,12 +56,6 @@ def set_alias(name: str, alias: str, version: str) -> None:
     registry.set_alias(name, alias, version)
 
 
-def _downstream_rows(n: int, cap: int | None, seed: int) -> np.ndarray:
-    if cap is None or n <= cap:
-        return np.arange(n)
-    return np.sort(np.random.default_rng(seed).choice(n, size=cap, replace=False))
-
-
 @flow(name="train", validate_parameters=False)
 def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
     """Train a vector set from the dataset a spec describes, judge it, and register it as `staging`.
@@ -95,11 +88,11 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
         network_pred = targets.inverse(network_pred, spec.target.transform)
     network_metrics = task_metrics(spec.target.task, y_test, network_pred)
 
-    rows = _downstream_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
+    rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
     subset = type(train_inputs)(train_inputs.cat_ids[rows], train_inputs.dense[rows])
     oof = cross_fit_vectors_task(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
-    in_sample = {c: result.vectors[c][subset.cat_ids[:, i]] for i, c in enumerate(spec.embed_names)}
-    on_test = {c: result.vectors[c][test_inputs.cat_ids[:, i]] for i, c in enumerate(spec.embed_names)}
+    in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
+    on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
         train_rows.iloc[rows], test_rows, spec,
         vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred,

@@ -41,3 +41,29 @@ def entivec_home(tmp_path, monkeypatch):
     monkeypatch.setenv("ENTIVEC_HOME", str(home))
     monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
     return home
+
+
+@pytest.fixture
+def run_cli(entivec_home, prefect_server):
+    """Run the `entivec` command in-process; returns (exit code, everything it printed)."""
+    from typer.testing import CliRunner
+
+    from entivec.cli import app
+
+    def run(args: list[str]) -> tuple[int, str]:
+        result = CliRunner().invoke(app, [str(a) for a in args])
+        return result.exit_code, result.output
+
+    return run
+
+
+@pytest.fixture
+def registered_versions(entivec_home):
+    """How many versions of a model the test's store holds (0 when the model does not exist)."""
+
+    def count(name: str) -> int:
+        from entivec.tasks import registry
+
+        return len(registry.client().search_model_versions(f"name = '{name}'"))
+
+    return count

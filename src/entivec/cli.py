@@ -164,6 +164,21 @@ def demo(
     )
 
 
+def _register_command_groups() -> None:
+    """Commands that live beside the flows they drive register themselves here."""
+    import importlib
+
+    for module in ("entivec.cli_lifecycle", "entivec.cli_apply"):
+        try:
+            importlib.import_module(module).register(app)
+        except ModuleNotFoundError as exc:
+            if exc.name != module:
+                raise
+
+
+_register_command_groups()
+
+
 def main() -> None:
     try:
         app()

@@ -1,0 +1,577 @@
+"""Honest downstream evaluation: do learned vectors help scikit-learn models on held-out rows, against baselines?
+
+The vectors are trained on the target, so a downstream model that sees in-sample vectors of its own training
+rows sees a smoothed copy of their targets: it looks better in training than it will be on new rows. As with
+target encoding, the cure is cross-fitting: each downstream training row gets vectors from a network trained
+without that row's fold (``out_of_fold_vectors``). Every fold's network lives in its own rotated coordinate
+system, so each is rotated onto the full-data vectors (``align_to``, orthogonal Procrustes) before use; the test
+rows then use the full-data vectors, which live in the same coordinates.
+
+``compare_downstream`` fits each downstream model on the same training rows with each feature set and scores it
+on the same held-out rows, beside the no-category baseline, one-hot, target encoding, and the leaky in-sample
+vectors (shown so the size of the leak is visible, never used as evidence).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import sklearn
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+from sklearn.ensemble import (
+    HistGradientBoostingClassifier,
+    HistGradientBoostingRegressor,
+    RandomForestClassifier,
+    RandomForestRegressor,
+)
+from sklearn.impute import SimpleImputer
+from sklearn.linear_model import LogisticRegression, Ridge
+from sklearn.model_selection import KFold, StratifiedKFold
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import OneHotEncoder, StandardScaler, TargetEncoder
+from threadpoolctl import threadpool_limits
+
+from entivec.schemas.spec import Spec
+from entivec.schemas.vocabulary import category_strings
+from entivec.tasks import targets
+from entivec.tasks.metrics import PRIMARY, task_metrics
+
+# Feature sets, in the order they appear in the table. Only the first three are "without vectors".
+NON_VECTOR_SETS = ("baseline", "onehot", "target_encoding")
+FEATURE_SETS = (*NON_VECTOR_SETS, "vectors", "vectors_in_sample")
+LEAKY_SETS = frozenset({"vectors_in_sample"})
+NETWORK = "network"
+
+# A missing category value is a category of its own for one-hot and target encoding.
+MISSING_CATEGORY = "<missing>"
+
+# Threads for scikit-learn models: the project's machines have 2 cores.
+N_JOBS = 2
+# OpenMP threads while fitting (hist gradient boosting is OpenMP inside). One, because OpenMP's many short
+# parallel regions collapse when another process competes for the 2 cores: measured here, 8,000 rows x 23
+# columns took 0.3 s on one thread and 6-12 s on two while another job was busy; idle, two threads gain little.
+OPENMP_THREADS = 1
+
+
+# --- alignment and cross-fitting -------------------------------------------------------------------------------
+
+
+def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+    """Rotate and translate ``source`` onto ``reference`` by orthogonal Procrustes, fitted on ``rows``.
+
+    Both matrices have one row per vocabulary id and the same shape. With A and B the chosen rows of each,
+    centred on their own means, the rotation R is the orthogonal matrix minimising ||A R - B||_F, which is
+    U Vᵀ for the singular value decomposition A ᵀB = U S Vᵀ (Schönemann, "A generalized solution of the
+    orthogonal Procrustes problem", Psychometrika 1966). The whole of ``source`` is then moved:
+    (source - mean_A) R + mean_B. R may include a reflection; no scaling is applied.
+
+    ``rows`` are vocabulary ids (integers) or a boolean mask; the default is every row but 0, the unknown row,
+    whose vector stands for whatever was rare or missing and is no fixed point to align on.
+    """
+    src = np.asarray(source, dtype=np.float64)
+    ref = np.asarray(reference, dtype=np.float64)
+    if src.ndim != 2 or ref.ndim != 2:
+        raise ValueError("align_to needs two 2-d matrices (vocabulary rows x dimensions)")
+    if src.shape != ref.shape:
+        raise ValueError(f"cannot align a {src.shape} matrix onto a {ref.shape} matrix: shapes differ")
+    if rows is None:
+        picked = np.arange(1, src.shape[0])
+    else:
+        picked = np.asarray(rows)
+        if picked.dtype == bool:
+            if picked.shape != (src.shape[0],):
+                raise ValueError("a boolean row mask must have one entry per vocabulary row")
+            picked = np.flatnonzero(picked)
+        picked = picked.astype(np.int64, copy=False)
+    if picked.size == 0:
+        raise ValueError("align_to needs at least one shared row to align on")
+    a, b = src[picked], ref[picked]
+    mean_a, mean_b = a.mean(axis=0), b.mean(axis=0)
+    u, _, vt = np.linalg.svd((a - mean_a).T @ (b - mean_b))
+    rotation = u @ vt
+    return (src - mean_a) @ rotation + mean_b
+
+
+def fold_splitter(task: str, folds: int, seed: int) -> KFold | StratifiedKFold:
+    """The folds used for cross-fitting: KFold for regression, StratifiedKFold for binary, shuffled with seed."""
+    if task == "regression":
+        return KFold(n_splits=folds, shuffle=True, random_state=seed)
+    if task == "binary":
+        return StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
+    raise ValueError(f"unknown task {task!r}; expected 'regression' or 'binary'")
+
+
+def _id_matrix(cat_ids: np.ndarray, columns: list[str]) -> np.ndarray:
+    ids = np.asarray(cat_ids)
+    if ids.ndim == 1 and len(columns) == 1:
+        ids = ids[:, None]
+    if ids.ndim != 2 or ids.shape[1] != len(columns):
+        raise ValueError(f"cat_ids must have one column per embedded column ({len(columns)}), got {ids.shape}")
+    if not np.issubdtype(ids.dtype, np.integer):
+        raise ValueError("cat_ids must be integer vocabulary ids")
+    if ids.size and ids.min() < 0:
+        raise ValueError("cat_ids must not be negative (0 is the unknown id)")
+    return ids.astype(np.int64, copy=False)
+
+
+def vectors_for_ids(cat_ids: np.ndarray, matrices: dict[str, np.ndarray], columns: list[str]) -> dict[str, np.ndarray]:
+    """Per column, the rows of its vector matrix picked by the ids: (n_rows, dim) each."""
+    ids = _id_matrix(cat_ids, columns)
+    out = {}
+    for j, col in enumerate(columns):
+        matrix = np.asarray(matrices[col])
+        if ids.size and ids[:, j].max() >= matrix.shape[0]:
+            raise ValueError(f"column {col!r}: id {ids[:, j].max()} is beyond its {matrix.shape[0]} vector rows")
+        out[col] = matrix[ids[:, j]]
+    return out
+
+
+def out_of_fold_vectors(
+    cat_ids: np.ndarray,
+    y: np.ndarray,
+    *,
+    columns: list[str],
+    folds: int,
+    seed: int,
+    fit_fold: Callable[[np.ndarray], dict[str, np.ndarray]],
+    reference: dict[str, np.ndarray],
+    task: str,
+) -> dict[str, np.ndarray]:
+    """Vectors for downstream training rows, each from a network that never saw that row's target.
+
+    ``cat_ids`` is (n_train, k): the vocabulary ids of the rows, one column per name in ``columns``.
+    For each fold (see ``fold_splitter``), ``fit_fold(train_row_indices)`` trains on the other folds' rows only
+    and returns a vector matrix per column, with the same vocabulary rows as ``reference`` (the full-data
+    vectors). Each matrix is rotated onto ``reference`` with ``align_to``, fitted on the categories that occur
+    in that fold's training rows (the only rows the fold's network learned; row 0 excluded). The fold's rows
+    then take their vectors from it.
+
+    A category that does not occur in the fold's training rows (e.g. one seen once in all the data) gets the
+    fold's unknown row (id 0), just as a category never seen in training gets the unknown row when vectors are
+    applied to new data: its own target must not reach its own vector. ``sklearn.preprocessing.TargetEncoder``
+    does the same with its fallback to the overall mean.
+
+    Returns per column an array (n_train, dim), float64.
+    """
+    ids = _id_matrix(cat_ids, columns)
+    n = ids.shape[0]
+    y = np.asarray(y).reshape(-1)
+    if y.shape[0] != n:
+        raise ValueError(f"cat_ids has {n} rows but y has {y.shape[0]}")
+    missing = [c for c in columns if c not in reference]
+    if missing:
+        raise ValueError(f"no reference vectors for column(s) {missing}")
+    refs = {c: np.asarray(reference[c], dtype=np.float64) for c in columns}
+    for j, col in enumerate(columns):
+        if n and ids[:, j].max() >= refs[col].shape[0]:
+            raise ValueError(f"column {col!r}: id {ids[:, j].max()} is beyond its {refs[col].shape[0]} vector rows")
+    out = {c: np.full((n, refs[c].shape[1]), np.nan) for c in columns}
+    covered = np.zeros(n, dtype=np.int64)
+
+    splitter = fold_splitter(task, folds, seed)
+    for train_rows, held_rows in splitter.split(np.zeros((n, 1)), y):
+        fold_mats = fit_fold(train_rows)
+        for j, col in enumerate(columns):
+            if col not in fold_mats:
+                raise ValueError(f"fit_fold returned no vectors for column {col!r}")
+            mat = np.asarray(fold_mats[col], dtype=np.float64)
+            if mat.shape != refs[col].shape:
+                raise ValueError(
+                    f"column {col!r}: fit_fold returned a {mat.shape} matrix, the reference is {refs[col].shape}; "
+                    "each fold must be trained against the full-data vocabulary"
+                )
+            learned = np.zeros(mat.shape[0], dtype=bool)
+            learned[ids[train_rows, j]] = True
+            learned[0] = False
+            aligned = align_to(mat, refs[col], rows=learned if learned.any() else None)
+            held_ids = ids[held_rows, j]
+            out[col][held_rows] = aligned[np.where(learned[held_ids], held_ids, 0)]
+        covered[held_rows] += 1
+    if not (covered == 1).all():  # a splitter that repeats or skips rows would leak or leave holes
+        raise RuntimeError("the folds did not cover every training row exactly once")
+    return out
+
+
+# --- the downstream comparison ----------------------------------------------------------------------------------
+
+
+@dataclass
+class Evidence:
+    """What the downstream comparison found; the table is the evidence, the summary says it in plain words."""
+
+    table: pd.DataFrame
+    primary_metric: str
+    summary: str
+    vectors_help: bool
+    predictions: dict[str, np.ndarray]
+    y_test: np.ndarray
+
+    def to_dict(self) -> dict:
+        """JSON-safe: the table as records (NaN as null), the verdict, and the keys of the stored predictions."""
+        return {
+            "primary_metric": self.primary_metric,
+            "vectors_help": bool(self.vectors_help),
+            "summary": self.summary,
+            "n_test": int(len(self.y_test)),
+            "table": [{k: _json_value(v) for k, v in row.items()} for row in self.table.to_dict("records")],
+            "prediction_keys": sorted(self.predictions),
+        }
+
+
+def _json_value(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def capped_rows(n_rows: int, max_rows: int | None, seed: int) -> np.ndarray:
+    """Row positions kept for downstream training: all of them, or a seeded sample of ``max_rows`` in order."""
+    if max_rows is None or n_rows <= max_rows:
+        return np.arange(n_rows)
+    return np.sort(np.random.default_rng(seed).choice(n_rows, size=max_rows, replace=False))
+
+
+def _target(frame: pd.DataFrame, spec: Spec, which: str) -> np.ndarray:
+    col = spec.target.column
+    if col not in frame.columns:
+        raise ValueError(f"{which} rows have no target column {col!r}")
+    values = frame[col]
+    if values.isna().any():
+        raise ValueError(f"{which} rows: target column {col!r} has {int(values.isna().sum())} missing value(s)")
+    if spec.target.task == "binary":
+        y = pd.to_numeric(values.astype("object").replace({True: 1, False: 0}), errors="coerce").to_numpy(float)
+        if not np.isin(y, (0.0, 1.0)).all():
+            raise ValueError(f"{which} rows: binary target column {col!r} must hold only 0/1 or False/True")
+        return y.astype(np.int64)
+    y = pd.to_numeric(values, errors="coerce").to_numpy(np.float64)
+    if not np.isfinite(y).all():
+        raise ValueError(f"{which} rows: regression target column {col!r} has non-numeric or infinite values")
+    return y
+
+
+def _category_frame(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    return pd.DataFrame(
+        {c: category_strings(frame[c]).fillna(MISSING_CATEGORY).astype(object) for c in columns},
+        index=frame.index,
+    )
+
+
+def _onehot(max_categories: int) -> OneHotEncoder:
+    # Categories beyond the cap are pooled into one "infrequent" column; a value unseen in training goes to that
+    # column when it exists, and to all zeros when the column has no infrequent categories.
+    return OneHotEncoder(
+        max_categories=max_categories, handle_unknown="infrequent_if_exist", sparse_output=False, dtype=np.float32
+    )
+
+
+def _target_encoder(task: str, folds: int, seed: int) -> TargetEncoder:
+    target_type = "continuous" if task == "regression" else "binary"
+    major, minor = (int(p) for p in sklearn.__version__.split(".")[:2])
+    if (major, minor) >= (1, 9):
+        # The same kind of folds and seed as the vectors' cross-fitting.
+        return TargetEncoder(target_type=target_type, cv=fold_splitter(task, folds, seed))
+    return TargetEncoder(target_type=target_type, cv=folds, shuffle=True, random_state=seed)
+
+
+def _stacked(parts: list[np.ndarray], n_rows: int) -> np.ndarray:
+    parts = [p for p in parts if p.shape[1]]
+    if not parts:
+        # No numerics and no one-hot columns: a constant column makes the baseline predict the training mean.
+        return np.zeros((n_rows, 1), dtype=np.float32)
+    return np.hstack([p.astype(np.float32, copy=False) for p in parts])
+
+
+def _feature_sets(
+    train: pd.DataFrame,
+    test: pd.DataFrame,
+    spec: Spec,
+    y_fit: np.ndarray,
+    vectors: dict[str, tuple[np.ndarray, np.ndarray]],
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    ev = spec.evaluation
+    numeric = spec.numeric_names
+    num_tr = (
+        train[numeric].apply(pd.to_numeric, errors="coerce").to_numpy(np.float64)
+        if numeric
+        else np.empty((len(train), 0))
+    )
+    num_te = (
+        test[numeric].apply(pd.to_numeric, errors="coerce").to_numpy(np.float64)
+        if numeric
+        else np.empty((len(test), 0))
+    )
+    base_tr, base_te = [num_tr], [num_te]
+    if spec.onehot_names:
+        enc = _onehot(ev.onehot_max_categories)
+        base_tr.append(enc.fit_transform(_category_frame(train, spec.onehot_names)))
+        base_te.append(enc.transform(_category_frame(test, spec.onehot_names)))
+
+    embed_tr = _category_frame(train, spec.embed_names)
+    embed_te = _category_frame(test, spec.embed_names)
+    onehot = _onehot(ev.onehot_max_categories)
+    oh_tr, oh_te = onehot.fit_transform(embed_tr), onehot.transform(embed_te)
+    te = _target_encoder(spec.target.task, ev.folds, ev.seed)
+    te_tr = te.fit_transform(embed_tr, y_fit)  # cross-fitted inside: each row is encoded without its own fold
+    te_te = te.transform(embed_te)
+
+    sets = {
+        "baseline": (_stacked(base_tr, len(train)), _stacked(base_te, len(test))),
+        "onehot": (_stacked([*base_tr, oh_tr], len(train)), _stacked([*base_te, oh_te], len(test))),
+        "target_encoding": (_stacked([*base_tr, te_tr], len(train)), _stacked([*base_te, te_te], len(test))),
+    }
+    for name, (vec_tr, vec_te) in vectors.items():
+        sets[name] = (_stacked([*base_tr, vec_tr], len(train)), _stacked([*base_te, vec_te], len(test)))
+    return sets
+
+
+def _model(name: str, task: str, seed: int):
+    """A downstream model with settings chosen for speed at up to a few hundred thousand rows on 2 cores.
+
+    - random_forest: 100 trees, leaves of at least 5 rows (smoother, smaller trees than scikit-learn's default
+      of 1, and several times faster), half the columns tried at each split. Half rather than sqrt: with a few
+      strong columns (a target encoding, a handful of vector dimensions) among many one-hot dummies, sqrt would
+      leave the strong ones out of most splits (common practice, no source).
+    - hist_gradient_boosting: scikit-learn's defaults with early stopping always on (10% of the rows held out
+      inside, 10 rounds of patience, at most 300 rounds), so the behaviour does not switch at 10,000 rows.
+    - linear: median imputation, standard scaling, then Ridge (alpha 1) or LogisticRegression (C 1).
+    """
+    regression = task == "regression"
+    if name == "random_forest":
+        cls = RandomForestRegressor if regression else RandomForestClassifier
+        return cls(n_estimators=100, min_samples_leaf=5, max_features=0.5, n_jobs=N_JOBS, random_state=seed)
+    if name == "hist_gradient_boosting":
+        cls = HistGradientBoostingRegressor if regression else HistGradientBoostingClassifier
+        return cls(max_iter=300, early_stopping=True, validation_fraction=0.1, n_iter_no_change=10, random_state=seed)
+    if name == "linear":
+        final = Ridge(alpha=1.0) if regression else LogisticRegression(C=1.0, max_iter=2000)
+        return make_pipeline(SimpleImputer(strategy="median", keep_empty_features=True), StandardScaler(), final)
+    raise ValueError(f"unknown downstream model {name!r}")
+
+
+def _predict(model, X: np.ndarray, task: str, transform: str) -> np.ndarray:
+    # float64 throughout: models fed float32 features may answer in float32.
+    if task == "binary":
+        classes = list(model.classes_)
+        return np.asarray(model.predict_proba(X)[:, classes.index(1)], dtype=np.float64)
+    return targets.inverse(np.asarray(model.predict(X), dtype=np.float64), transform)
+
+
+def _check_vectors(name: str, vectors: dict[str, np.ndarray], columns: list[str], n_rows: int) -> np.ndarray:
+    missing = [c for c in columns if c not in vectors]
+    if missing:
+        raise ValueError(f"{name}: no vectors for embedded column(s) {missing}")
+    blocks = []
+    for col in columns:
+        block = np.asarray(vectors[col], dtype=np.float64)
+        if block.ndim != 2 or block.shape[0] != n_rows:
+            raise ValueError(f"{name}[{col!r}]: expected ({n_rows}, dim) row vectors, got shape {block.shape}")
+        if not np.isfinite(block).all():
+            raise ValueError(f"{name}[{col!r}]: vectors must be finite")
+        blocks.append(block)
+    return np.hstack(blocks)
+
+
+def compare_downstream(
+    train: pd.DataFrame,
+    test: pd.DataFrame,
+    spec: Spec,
+    *,
+    vectors_oof: dict[str, np.ndarray],
+    vectors_in_sample: dict[str, np.ndarray],
+    vectors_test: dict[str, np.ndarray],
+    network_test_pred: np.ndarray | None,
+) -> Evidence:
+    """Fit every downstream model of ``spec.evaluation.models`` on every feature set; score on the same test rows.
+
+    ``train`` and ``test`` hold the spec's columns and target; ``vectors_*`` give, per embedded column, one row
+    vector per row of ``train`` (out-of-fold, and in-sample) or ``test`` (full-data vectors), in row order.
+    ``network_test_pred`` is the vector network's own prediction for the test rows on the original scale
+    (probabilities of class 1 for binary), or None.
+
+    Feature sets: ``baseline`` (numerics + one-hot of ``columns.onehot``; no embedded column at all), ``onehot``
+    (+ one-hot of the embedded columns, at most ``evaluation.onehot_max_categories`` columns each, rarer
+    categories pooled), ``target_encoding`` (+ scikit-learn's cross-fitted ``TargetEncoder``), ``vectors``
+    (+ out-of-fold vectors for training rows, full-data vectors for test rows) and ``vectors_in_sample``
+    (+ in-sample vectors for training rows: leaky, shown for contrast, never evidence).
+
+    Regression models learn the target after ``spec.target.transform`` and are scored after the inverse, on
+    the original scale. When ``train`` has more than ``evaluation.max_train_rows`` rows, the models train on a
+    seeded sample of that many (the table's ``n_train`` against ``n_train_available`` shows it).
+
+    ``vectors_help`` is True only when the out-of-fold vectors beat the best feature set without vectors on the
+    primary metric for every downstream model. One split is not a significance test: ``predictions`` keeps
+    each row's test predictions for a paired comparison.
+    """
+    task_kind, ev = spec.target.task, spec.evaluation
+    transform = spec.target.transform if task_kind == "regression" else "none"
+    primary = PRIMARY[task_kind]
+    if not ev.models:
+        raise ValueError("evaluation.models is empty: nothing to compare")
+    absent = [c for c in spec.feature_columns if c not in train.columns or c not in test.columns]
+    if absent:
+        raise ValueError(f"train/test rows lack spec column(s) {absent}")
+    y_train_all = _target(train, spec, "training")
+    y_test = _target(test, spec, "test")
+    columns = spec.embed_names
+    oof = _check_vectors("vectors_oof", vectors_oof, columns, len(train))
+    in_sample = _check_vectors("vectors_in_sample", vectors_in_sample, columns, len(train))
+    vec_test = _check_vectors("vectors_test", vectors_test, columns, len(test))
+    if network_test_pred is not None:
+        network_test_pred = np.asarray(network_test_pred, dtype=np.float64).reshape(-1)
+        if network_test_pred.shape[0] != len(test):
+            raise ValueError(f"network_test_pred has {network_test_pred.shape[0]} rows, test has {len(test)}")
+
+    n_available = len(train)
+    keep = capped_rows(n_available, ev.max_train_rows, ev.seed)
+    train = train.iloc[keep]
+    y_train = y_train_all[keep]
+    if task_kind == "binary" and np.unique(y_train).size < 2:
+        raise ValueError("binary target: the training rows hold one class only; nothing to learn")
+    y_fit = targets.forward(y_train, transform) if task_kind == "regression" else y_train
+    sets = _feature_sets(
+        train,
+        test,
+        spec,
+        y_fit,
+        {"vectors": (oof[keep], vec_test), "vectors_in_sample": (in_sample[keep], vec_test)},
+    )
+
+    rows: list[dict[str, Any]] = []
+    predictions: dict[str, np.ndarray] = {}
+    for model_name in ev.models:
+        for feature_set in FEATURE_SETS:
+            X_train, X_test = sets[feature_set]
+            if model_name == "linear":  # float32 is plenty for trees; linear solvers want float64 precision
+                X_train, X_test = X_train.astype(np.float64), X_test.astype(np.float64)
+            model = _model(model_name, task_kind, ev.seed)
+            with threadpool_limits(limits=OPENMP_THREADS, user_api="openmp"):
+                started = time.perf_counter()
+                model.fit(X_train, y_fit)
+                seconds = time.perf_counter() - started
+                pred = _predict(model, X_test, task_kind, transform)
+            predictions[f"{model_name}/{feature_set}"] = pred
+            rows.append(
+                {
+                    "model": model_name,
+                    "features": feature_set,
+                    **task_metrics(task_kind, y_test, pred),
+                    "n_train": len(keep),
+                    "n_train_available": n_available,
+                    "n_test": len(test),
+                    "n_features": X_train.shape[1],
+                    "fit_seconds": seconds,
+                    "leaky": feature_set in LEAKY_SETS,
+                }
+            )
+    if network_test_pred is not None:
+        predictions[f"{NETWORK}/all"] = network_test_pred
+        rows.append(
+            {
+                "model": NETWORK,
+                "features": "all",
+                **task_metrics(task_kind, y_test, network_test_pred),
+                "n_train": n_available,  # the network trained on the training rows before any cap
+                "n_train_available": n_available,
+                "n_test": len(test),
+                "n_features": len(spec.feature_columns),
+                "fit_seconds": float("nan"),  # trained elsewhere; its time is the trainer's to report
+                "leaky": False,
+            }
+        )
+    table = pd.DataFrame(rows)
+    vectors_help, summary = _verdict(table, spec, primary)
+    return Evidence(
+        table=table,
+        primary_metric=primary,
+        summary=summary,
+        vectors_help=vectors_help,
+        predictions=predictions,
+        y_test=y_test,
+    )
+
+
+def _verdict(table: pd.DataFrame, spec: Spec, primary: str) -> tuple[bool, str]:
+    """Per model: out-of-fold vectors against the best feature set without vectors; lower is better."""
+    ev = spec.evaluation
+    first = table.iloc[0]
+    n_train, n_available, n_test = int(first["n_train"]), int(first["n_train_available"]), int(first["n_test"])
+    scale = "original target scale" if spec.target.task == "regression" else "predicted probabilities"
+    sample = (
+        f"a seeded sample of {n_available:,} available rows (evaluation.max_train_rows)"
+        if n_train < n_available
+        else "all training rows"
+    )
+    lines = [
+        f"Held-out evaluation on {n_test:,} test rows; downstream models trained on {n_train:,} rows ({sample}). "
+        f"Primary metric: {primary} on the {scale} (lower is better)."
+    ]
+    wins, leaky_notes = 0, []
+    for model_name in ev.models:
+        scores = table[table["model"] == model_name].set_index("features")[primary]
+        without = scores.loc[list(NON_VECTOR_SETS)]
+        best_name = str(without.idxmin())
+        best, vec = float(without.min()), float(scores.loc["vectors"])
+        helps = vec < best
+        wins += helps
+        change = f" ({abs(vec - best) / best:.1%} {'better' if helps else 'worse'})" if best > 0 and vec != best else ""
+        lines.append(
+            f"- {model_name}: vectors {vec:.6g} vs best without vectors {best:.6g} ({best_name}): "
+            f"vectors {'help' if helps else 'do not help'}{change}."
+        )
+        leaky_notes.append(f"{model_name} {float(scores.loc['vectors_in_sample']):.6g}")
+    n_models = len(ev.models)
+    vectors_help = wins == n_models
+    if vectors_help:
+        lines.append(
+            f"Verdict: the vectors help: they beat the best feature set without vectors for all {n_models} "
+            "downstream model(s) on this split (check with a paired test before relying on small margins)."
+        )
+    else:
+        lines.append(
+            f"Verdict: the vectors do not help: they beat the best feature set without vectors for only {wins} "
+            f"of {n_models} downstream model(s); a promotion should not rest on them."
+        )
+    lines.append(
+        f"In-sample (leaky) vectors, for contrast only: {', '.join(leaky_notes)}. Their training rows saw vectors "
+        "learned from their own targets; the gap to the out-of-fold rows shows the leak. They are never evidence."
+    )
+    network = table[table["model"] == NETWORK]
+    if len(network):
+        lines.append(f"The vector network itself: {primary} {float(network[primary].iloc[0]):.6g}.")
+    lines.append(
+        "Caution: vectors of places or groups (postcodes, stores, ...) can stand in for protected attributes; "
+        "check what they encode before using them in decisions about people."
+    )
+    return vectors_help, "\n".join(lines)
+
+
+@task(name="evaluate-downstream", cache_policy=NO_CACHE)
+def evaluate_downstream(
+    train: pd.DataFrame,
+    test: pd.DataFrame,
+    spec: Spec,
+    *,
+    vectors_oof: dict[str, np.ndarray],
+    vectors_in_sample: dict[str, np.ndarray],
+    vectors_test: dict[str, np.ndarray],
+    network_test_pred: np.ndarray | None = None,
+) -> Evidence:
+    """Prefect task around ``compare_downstream`` (not cached: its inputs are whole tables)."""
+    return compare_downstream(
+        train,
+        test,
+        spec,
+        vectors_oof=vectors_oof,
+        vectors_in_sample=vectors_in_sample,
+        vectors_test=vectors_test,
+        network_test_pred=network_test_pred,
+    )
