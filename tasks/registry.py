@@ -93,7 +93,7 @@ def resolve(name: str, version_or_alias: str | int) -> ModelVersion:
         try:
             return c.get_model_version(name, number)
         except MlflowException:
-            versions = [v.version for v in list_versions(name)]
+            versions = [str(v.version) for v in list_versions(name)]
             raise RegistryError(
                 f"model {name!r} has no version {number}; versions: {', '.join(versions) or 'none'}"
             ) from None
@@ -130,7 +130,8 @@ def _cache_folder(name: str, version: str) -> Path:
 def load_version(name: str, version_or_alias: str | int = PRODUCTION) -> LoadedVersion:
     """The vector set of one registered version. Versions are immutable, so a local copy is cached."""
     mv = resolve(name, version_or_alias)
-    folder = _cache_folder(name, mv.version)
+    version = str(mv.version)
+    folder = _cache_folder(name, version)
     if not (folder / "vector_set.json").exists():
         project_home().mkdir(parents=True, exist_ok=True)
         with tempfile.TemporaryDirectory(dir=project_home()) as tmp:
@@ -145,7 +146,7 @@ def load_version(name: str, version_or_alias: str | int = PRODUCTION) -> LoadedV
             except OSError:  # another process filled the cache first
                 if not (folder / "vector_set.json").exists():
                     raise
-    return LoadedVersion(name, mv.version, mv.run_id, VectorSet.load(folder), folder)
+    return LoadedVersion(name, version, mv.run_id, VectorSet.load(folder), folder)
 
 
 def set_alias(name: str, alias: str, version: str) -> None:

@@ -99,7 +99,7 @@ def versions(name: Annotated[str, typer.Argument(help="Registered model name.")]
         )
         created = datetime.fromtimestamp(mv.creation_timestamp / 1000, UTC).strftime("%Y-%m-%d %H:%M:%S")
         table.add_row(
-            mv.version, ", ".join(sorted(by_version.get(mv.version, []))), created,
+            str(mv.version), ", ".join(sorted(by_version.get(str(mv.version), []))), created,
             tags.get("entivec.data_fingerprint", "")[:12], tags.get("entivec.rows_used", ""),
             metrics, tags.get("entivec.vectors_help", ""),
         )

@@ -43,3 +43,5 @@ def apply_environment_defaults() -> None:
     }
     for key, value in defaults.items():
         os.environ.setdefault(key, value)
+    # The temporary Prefect server keeps a SQLite file here and cannot create the folder itself.
+    Path(os.environ["PREFECT_HOME"]).expanduser().mkdir(parents=True, exist_ok=True)
