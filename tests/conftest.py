@@ -33,11 +33,27 @@ def prefect_server():
         yield
 
 
+@pytest.fixture(scope="session")
+def empty_store() -> Path:
+    """An MLflow SQLite store with its tables created once: creating them takes seconds, copying it does not."""
+    import mlflow
+    from mlflow.tracking import MlflowClient
+
+    path = _SESSION_HOME / "template" / "mlflow.db"
+    path.parent.mkdir(parents=True)
+    MlflowClient(tracking_uri=f"sqlite:///{path}").search_experiments()
+    mlflow.set_tracking_uri(None)
+    return path
+
+
 @pytest.fixture
-def entivec_home(tmp_path, monkeypatch):
+def entivec_home(tmp_path, monkeypatch, empty_store):
     """A fresh project folder with its own SQLite MLflow store, for tests that register versions."""
+    import shutil
+
     home = tmp_path / "home"
     home.mkdir()
+    shutil.copy(empty_store, home / "mlflow.db")
     monkeypatch.setenv("ENTIVEC_HOME", str(home))
     monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
     return home

@@ -301,20 +301,6 @@ def _squash(text: str) -> str:
     return " ".join(text.split())
 
 
-def _versions(request) -> int:
-    """Registered versions of MODEL in this test's fresh project folder.
-
-    Creating an empty embedded store takes seconds; when the run never created one, nothing can have been
-    registered in it, so the count is 0 without building it.
-    """
-    from entivec.settings import tracking_uri
-
-    uri = tracking_uri()
-    if uri.startswith("sqlite:///") and not Path(uri.removeprefix("sqlite:///")).exists():
-        return 0
-    return request.getfixturevalue("registered_versions")(MODEL)
-
-
 @pytest.mark.parametrize("case", CLI_CASES, ids=[c.name for c in CLI_CASES])
 def test_cli_level_failure(case: Case, tmp_path, request):
     pytest.importorskip("entivec.cli")
@@ -325,4 +311,4 @@ def test_cli_level_failure(case: Case, tmp_path, request):
     squashed = _squash(output)
     for fragment in case.fragments:
         assert _squash(fragment) in squashed, f"{case.name}: {fragment!r} not in output:\n{output}"
-    assert _versions(request) == 0
+    assert request.getfixturevalue("registered_versions")(MODEL) == 0

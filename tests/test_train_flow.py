@@ -61,7 +61,7 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert outcome.rows_used + outcome.rows_quarantined == ROWS
 
     assert outcome.version == "1"
-    assert registry.resolve("stone-prices", "staging").version == "1"
+    assert str(registry.resolve("stone-prices", "staging").version) == "1"
     loaded = registry.load_version("stone-prices", "staging")
     vocab = loaded.vector_set.vocabularies["clarity"]
     # The eight GIA clarity grades present in the data (ggplot2 documentation lists them).
@@ -98,7 +98,7 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     for column in ("clarity", "color"):
         first = loaded.vector_set.vocabularies[column].categories
         assert again[column].categories[: len(first)] == first
-    assert registry.resolve("stone-prices", "staging").version == "2"
+    assert str(registry.resolve("stone-prices", "staging").version) == "2"
 
 
 def test_failure_after_registration_leaves_no_version(
