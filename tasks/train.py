@@ -1,0 +1,731 @@
+"""Train entity vectors: a small network with one embedding table per categorical column, on CPU, seeded.
+
+The network is the classic entity-embedding regressor/classifier: each embedded column looks up its row in
+its own table, the looked-up vectors are concatenated with the standardized numerics and the one-hot
+columns, and dense ReLU layers map that to one output. After training, the tables are the vectors.
+
+Speed comes from the loop's shape:
+
+- one ``torch.randperm`` per epoch permutes whole tensors once; every batch is then a contiguous slice;
+- the embedding lookup is done outside autograd and the looked-up rows are the autograd leaves, so the
+  backward pass never builds a table-sized gradient; each table is then updated with Adam on the rows that
+  occurred in the batch only ("lazy" Adam: a row's moments decay only when the row is used — the same rule
+  as ``torch.optim.SparseAdam``), which makes a step cost the batch, not the table;
+- the dense layers keep their weights and gradients in one flat buffer each, so their Adam step is one call
+  of torch's fused Adam kernel instead of a Python loop over parameters;
+- validation runs without gradients in large slices.
+
+Determinism: with the same seed, data and thread count, two runs give bit-identical vectors. The global torch
+random state, thread count and deterministic-algorithms flag of the caller are restored afterwards.
+Threads: ``training.threads``, else :func:`default_threads` (one thread on this 2-core class of machine:
+measured faster for small networks, and far safer whenever other work competes for the cores).
+
+Caution: vectors of places (postcodes, depots, stores) can act as proxies for protected attributes of the
+people who live or shop there; check downstream use before relying on them.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import torch
+import torch.nn.functional as F
+from prefect import task
+from prefect.cache_policies import NONE as NO_CACHE
+from torch.optim.adam import adam as adam_functional
+
+from entivec.schemas.spec import Spec, TrainingSpec
+from entivec.schemas.vocabulary import Vocabulary, category_strings
+
+WEIGHTS_FORMAT = "entivec.entity_net/1"
+# Adam's published defaults (Kingma & Ba, "Adam: A Method for Stochastic Optimization", ICLR 2015),
+# the same as torch.optim.Adam's.
+ADAM_BETAS = (0.9, 0.999)
+ADAM_EPS = 1e-8
+# Embedding rows start small so that the dense layers see little noise from untrained categories
+# (common practice, no source).
+EMBEDDING_INIT_STD = 0.05
+_EVAL_SLICE = 65_536
+_PROGRESS_EVERY = 32  # batches between progress-bar updates
+
+
+# --- encoding a cleaned frame into network inputs ----------------------------------------------------------------
+
+
+@dataclass
+class EncodedInputs:
+    """Network inputs for n rows."""
+
+    cat_ids: np.ndarray  # int64 (n, k): vocabulary ids per embedded column, in spec.embed_names order
+    dense: np.ndarray  # float32 (n, d): standardized numerics, then one-hot indicator columns
+
+    def __post_init__(self) -> None:
+        self.cat_ids = np.asarray(self.cat_ids, dtype=np.int64)
+        self.dense = np.asarray(self.dense, dtype=np.float32)
+        if self.cat_ids.ndim != 2 or self.dense.ndim != 2:
+            raise ValueError("EncodedInputs: cat_ids and dense must both be 2-D arrays")
+        if len(self.cat_ids) != len(self.dense):
+            raise ValueError(f"EncodedInputs: {len(self.cat_ids)} rows of ids but {len(self.dense)} dense rows")
+
+    def __len__(self) -> int:
+        return len(self.cat_ids)
+
+    def take(self, rows: np.ndarray) -> EncodedInputs:
+        """The inputs of the given rows (positions or a boolean mask)."""
+        return EncodedInputs(self.cat_ids[rows], self.dense[rows])
+
+
+@dataclass
+class FeatureEncoder:
+    """Fitted on training rows only; turns a cleaned frame into :class:`EncodedInputs`.
+
+    - embedded columns: vocabulary ids (unknown, rare or missing -> id 0);
+    - numeric columns: standardized with the training mean and standard deviation (population, ddof=0);
+      a constant column gets a standard deviation of 1; a missing value becomes 0, i.e. the training mean;
+    - one-hot columns: one indicator per level observed on the training rows, in sorted order; a level not
+      seen in training, or a missing value, gives all zeros.
+    """
+
+    embed_columns: list[str]
+    vocabularies: dict[str, Vocabulary]
+    numeric_columns: list[str]
+    numeric_mean: list[float]
+    numeric_std: list[float]
+    onehot_levels: dict[str, list[str]] = field(default_factory=dict)
+
+    @classmethod
+    def fit(cls, frame: pd.DataFrame, spec: Spec, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
+        missing = [c for c in spec.feature_columns if c not in frame.columns]
+        if missing:
+            raise KeyError(f"feature encoder: the frame lacks column(s) {missing}")
+        absent = [c for c in spec.embed_names if c not in vocabularies]
+        if absent:
+            raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
+        means, stds = [], []
+        for name in spec.numeric_names:
+            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
+            finite = values[np.isfinite(values)]
+            mean = float(finite.mean()) if finite.size else 0.0
+            std = float(finite.std()) if finite.size else 0.0
+            means.append(mean)
+            stds.append(std if std > 0 and math.isfinite(std) else 1.0)
+        levels = {}
+        for name in spec.onehot_names:
+            observed = category_strings(frame[name]).dropna().unique()
+            levels[name] = sorted(str(v) for v in observed)
+        return cls(
+            embed_columns=list(spec.embed_names),
+            vocabularies={c: vocabularies[c] for c in spec.embed_names},
+            numeric_columns=list(spec.numeric_names),
+            numeric_mean=means,
+            numeric_std=stds,
+            onehot_levels=levels,
+        )
+
+    @property
+    def dense_names(self) -> list[str]:
+        """Names of the dense input columns, in order: numerics, then ``column=level`` indicators."""
+        names = list(self.numeric_columns)
+        for column, levels in self.onehot_levels.items():
+            names.extend(f"{column}={level}" for level in levels)
+        return names
+
+    def transform(self, frame: pd.DataFrame) -> EncodedInputs:
+        n = len(frame)
+        cat_ids = np.zeros((n, len(self.embed_columns)), dtype=np.int64)
+        for j, name in enumerate(self.embed_columns):
+            cat_ids[:, j] = self.vocabularies[name].encode(frame[name])
+        dense = np.zeros((n, len(self.dense_names)), dtype=np.float32)
+        for j, name in enumerate(self.numeric_columns):
+            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
+            scaled = (values - self.numeric_mean[j]) / self.numeric_std[j]
+            dense[:, j] = np.where(np.isfinite(scaled), scaled, 0.0)
+        start = len(self.numeric_columns)
+        for name, levels in self.onehot_levels.items():
+            positions = pd.Index(levels, dtype="string").get_indexer(category_strings(frame[name]))
+            rows = np.flatnonzero(positions >= 0)
+            dense[rows, start + positions[rows]] = 1.0
+            start += len(levels)
+        return EncodedInputs(cat_ids, dense)
+
+    def to_dict(self) -> dict:
+        """JSON-safe state; the vocabularies are stored on their own and passed back to :meth:`from_dict`."""
+        return {
+            "embed_columns": list(self.embed_columns),
+            "numeric_columns": list(self.numeric_columns),
+            "numeric_mean": [float(v) for v in self.numeric_mean],
+            "numeric_std": [float(v) for v in self.numeric_std],
+            "onehot_levels": {k: list(v) for k, v in self.onehot_levels.items()},
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
+        columns = list(data["embed_columns"])
+        absent = [c for c in columns if c not in vocabularies]
+        if absent:
+            raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
+        return cls(
+            embed_columns=columns,
+            vocabularies={c: vocabularies[c] for c in columns},
+            numeric_columns=list(data["numeric_columns"]),
+            numeric_mean=[float(v) for v in data["numeric_mean"]],
+            numeric_std=[float(v) for v in data["numeric_std"]],
+            onehot_levels={k: list(v) for k, v in data["onehot_levels"].items()},
+        )
+
+
+# --- the network ------------------------------------------------------------------------------------------------
+
+
+class EntityNet(torch.nn.Module):
+    """Embedding tables + dense ReLU layers + one output.
+
+    ``forward`` returns predictions on the scale the network was trained on: the transformed target for
+    regression (``target_scale * raw + target_shift``, both buffers set by the trainer), logits for binary.
+    """
+
+    def __init__(
+        self, cardinalities: list[int], sizes: list[int], n_dense: int, hidden: list[int], dropout: float = 0.0
+    ) -> None:
+        super().__init__()
+        if len(cardinalities) != len(sizes):
+            raise ValueError(f"{len(cardinalities)} cardinalities but {len(sizes)} sizes")
+        if any(int(c) < 1 for c in cardinalities) or any(int(s) < 1 for s in sizes):
+            raise ValueError("cardinalities and sizes must be at least 1")
+        self.cardinalities = [int(c) for c in cardinalities]
+        self.sizes = [int(s) for s in sizes]
+        self.n_dense = int(n_dense)
+        self.hidden = [int(h) for h in hidden]
+        self.dropout = float(dropout)
+        self.embeddings = torch.nn.ModuleList(
+            torch.nn.Embedding(c, s) for c, s in zip(self.cardinalities, self.sizes, strict=True)
+        )
+        for table in self.embeddings:
+            torch.nn.init.normal_(table.weight, std=EMBEDDING_INIT_STD)
+        width = sum(self.sizes) + self.n_dense
+        layers = []
+        for units in self.hidden:
+            layers.append(torch.nn.Linear(width, units))
+            width = units
+        self.layers = torch.nn.ModuleList(layers)
+        self.output = torch.nn.Linear(width, 1)
+        self.register_buffer("target_shift", torch.zeros(()))
+        self.register_buffer("target_scale", torch.ones(()))
+
+    def architecture(self) -> dict:
+        return {
+            "cardinalities": self.cardinalities,
+            "sizes": self.sizes,
+            "n_dense": self.n_dense,
+            "hidden": self.hidden,
+            "dropout": self.dropout,
+        }
+
+    def embed(self, cat_ids: torch.Tensor) -> torch.Tensor:
+        """The concatenated vectors of each row's categories, shape (n, sum(sizes))."""
+        parts = [F.embedding(cat_ids[:, j], table.weight) for j, table in enumerate(self.embeddings)]
+        return torch.cat(parts, 1) if parts else cat_ids.new_zeros((len(cat_ids), 0), dtype=torch.float32)
+
+    def head(self, x: torch.Tensor) -> torch.Tensor:
+        """Dense layers on concatenated inputs; the raw output (standardized scale or logit), shape (n,)."""
+        for layer in self.layers:
+            x = F.relu(layer(x), inplace=True)  # the linear output is not needed by its backward
+            if self.dropout > 0:
+                x = F.dropout(x, self.dropout, self.training)
+        return self.output(x).squeeze(1)
+
+    def forward(self, cat_ids: torch.Tensor, dense: torch.Tensor) -> torch.Tensor:
+        raw = self.head(torch.cat([self.embed(cat_ids), dense], 1))
+        return raw * self.target_scale + self.target_shift
+
+    def vectors(self) -> list[np.ndarray]:
+        """One float32 matrix per embedded column, shape (cardinality, size); row = vocabulary id."""
+        return [table.weight.detach().numpy().astype(np.float32, copy=True) for table in self.embeddings]
+
+
+def count_parameters(model: torch.nn.Module) -> int:
+    """Trainable numbers in a model (buffers such as the target scale are not counted)."""
+    return int(sum(p.numel() for p in model.parameters()))
+
+
+def save_weights(model: EntityNet, path: str | Path) -> None:
+    """Save weights as safetensors (never pickle); the architecture travels in the file's metadata."""
+    from safetensors.torch import save_file
+
+    tensors = {name: t.detach().contiguous().clone() for name, t in model.state_dict().items()}
+    metadata = {"format": WEIGHTS_FORMAT, "architecture": json.dumps(model.architecture())}
+    save_file(tensors, str(path), metadata=metadata)
+
+
+def load_weights(path: str | Path) -> EntityNet:
+    """Rebuild an :class:`EntityNet` from a file written by :func:`save_weights`."""
+    from safetensors import safe_open
+    from safetensors.torch import load_file
+
+    with safe_open(str(path), framework="pt") as handle:
+        metadata = handle.metadata() or {}
+    if metadata.get("format") != WEIGHTS_FORMAT:
+        raise ValueError(f"{path}: not an entivec network file (format {metadata.get('format')!r})")
+    arch = json.loads(metadata["architecture"])
+    model = EntityNet(arch["cardinalities"], arch["sizes"], arch["n_dense"], arch["hidden"], arch["dropout"])
+    model.load_state_dict(load_file(str(path)))
+    model.eval()
+    return model
+
+
+# --- optimisation ------------------------------------------------------------------------------------------------
+
+
+def _adam_step(
+    params: torch.Tensor,
+    grads: torch.Tensor,
+    m: torch.Tensor,
+    v: torch.Tensor,
+    step: torch.Tensor,
+    lr: float,
+    wd: float,
+) -> None:
+    """One Adam step in place with torch's own fused kernel (the one behind ``torch.optim.Adam(fused=True)``).
+
+    ``step`` is a float tensor holding the number of steps taken so far; the kernel increments it.
+    Weight decay is the L2 penalty of torch.optim.Adam (added to the gradient), not AdamW's decoupled decay.
+    """
+    adam_functional(
+        [params],
+        [grads],
+        [m],
+        [v],
+        [],
+        [step],
+        foreach=False,
+        fused=True,
+        capturable=False,
+        differentiable=False,
+        amsgrad=False,
+        beta1=ADAM_BETAS[0],
+        beta2=ADAM_BETAS[1],
+        lr=lr,
+        weight_decay=wd,
+        eps=ADAM_EPS,
+        maximize=False,
+    )
+
+
+class _FlatAdam:
+    """Adam for the dense layers: parameters and gradients live in one flat buffer, so a step is one update."""
+
+    def __init__(self, params: list[torch.nn.Parameter], lr: float, weight_decay: float) -> None:
+        total = sum(p.numel() for p in params)
+        self.flat = torch.empty(total)
+        self.grad = torch.zeros(total)
+        start = 0
+        for p in params:
+            n = p.numel()
+            self.flat[start : start + n].copy_(p.detach().reshape(-1))
+            p.data = self.flat[start : start + n].view_as(p)
+            # Autograd adds into an existing .grad in place, so the gradients land in the flat buffer.
+            p.grad = self.grad[start : start + n].view_as(p)
+            start += n
+        self.params = params
+        self.m = torch.zeros(total)
+        self.v = torch.zeros(total)
+        self.steps = torch.zeros((), dtype=torch.float32)
+        self.lr, self.wd = lr, weight_decay
+
+    def zero_grad(self) -> None:
+        self.grad.zero_()
+
+    def step(self) -> None:
+        _adam_step(self.flat, self.grad, self.m, self.v, self.steps, self.lr, self.wd)
+
+    def release(self) -> None:
+        """Give every parameter its own storage again (safetensors refuses tensors that share memory)."""
+        for p in self.params:
+            p.data = p.data.clone()
+            p.grad = None
+
+
+class _RowAdam:
+    """Lazy Adam for one embedding table: only the rows used by the batch are updated.
+
+    A row's moments decay only on the steps that use it, as in ``torch.optim.SparseAdam``; the bias
+    correction counts every step of the table. The cost of a step is that of the batch, not of the table.
+    """
+
+    def __init__(self, table: torch.Tensor, lr: float, weight_decay: float) -> None:
+        self.table = table
+        self.m = torch.zeros_like(table)
+        self.v = torch.zeros_like(table)
+        self.steps = torch.zeros((), dtype=torch.float32)
+        self.lr, self.wd = lr, weight_decay
+
+    def step(self, ids: torch.Tensor, grad: torch.Tensor) -> None:
+        rows, inverse = torch.unique(ids, return_inverse=True)
+        # Sum the gradients of repeated ids (index_put_ with accumulate: the fastest CPU way, measured).
+        summed = grad.new_zeros((len(rows), grad.shape[1])).index_put_((inverse,), grad, accumulate=True)
+        param, m, v = (t.index_select(0, rows) for t in (self.table, self.m, self.v))
+        _adam_step(param, summed, m, v, self.steps, self.lr, self.wd)
+        for target, values in ((self.table, param), (self.m, m), (self.v, v)):
+            target.index_copy_(0, rows, values)
+
+
+# --- training ----------------------------------------------------------------------------------------------------
+
+
+@dataclass
+class TrainResult:
+    model: EntityNet
+    history: list[dict]  # per epoch: epoch, train_loss, valid_loss, seconds, rows_per_second
+    best_epoch: int
+    best_valid_loss: float
+    vectors: dict[str, np.ndarray]  # column name -> matrix (row = vocabulary id)
+    seconds: float
+
+
+def default_threads(cardinalities: list[int], sizes: list[int], n_dense: int, hidden: list[int]) -> int:
+    """Torch threads when the spec leaves them open: 1, except 2 for wide networks on machines with 4+ cores.
+
+    Measured on a 2-core machine shared with other work (best of short bursts, then whole epochs in
+    benchmarks/bench_trainer.py): with hidden [128, 64] and 25 embedding dimensions (about 13,000
+    multiply-adds per row) two threads ran at 0.95x one thread at batch 1024 and 1.14x at batch 4096; with
+    727 embedding dimensions (about 103,000 multiply-adds per row) at 1.25x. Whenever other processes used
+    the cores, two threads ran 4-10x slower than one (every small operation waits for the descheduled
+    thread), and whole epochs of the wide network ran at 6,500-14,000 rows/s with two threads. So a machine
+    with fewer than 4 cores always gets one thread. On 4 or more cores two threads are chosen for networks
+    of 60,000+ multiply-adds per row; that case was not measured here. One thread also makes the vectors
+    the same on machines with different core counts.
+    """
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    width = sum(sizes) + n_dense
+    macs_per_row = 0
+    for units in [*hidden, 1]:
+        macs_per_row += width * units
+        width = units
+    return 2 if cores >= 4 and macs_per_row >= _TWO_THREAD_MACS else 1
+
+
+_TWO_THREAD_MACS = 60_000
+
+
+@contextmanager
+def _torch_state(threads: int, seed: int) -> Iterator[None]:
+    """Seed, thread count and deterministic algorithms for one training run; the caller's state comes back."""
+    previous_threads = torch.get_num_threads()
+    previous_deterministic = torch.are_deterministic_algorithms_enabled()
+    previous_warn = torch.is_deterministic_algorithms_warn_only_enabled()
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        torch.set_num_threads(threads)
+        torch.use_deterministic_algorithms(True, warn_only=True)
+        try:
+            yield
+        finally:
+            torch.set_num_threads(previous_threads)
+            torch.use_deterministic_algorithms(previous_deterministic, warn_only=previous_warn)
+
+
+def _loss(raw: torch.Tensor, target: torch.Tensor, task: str) -> torch.Tensor:
+    if task == "binary":
+        return F.binary_cross_entropy_with_logits(raw, target)
+    return F.mse_loss(raw, target)
+
+
+def _holdout(n: int, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Seeded split of n rows into (train, valid) positions for early stopping."""
+    if n < 2:
+        raise ValueError(f"training needs at least 2 rows to hold some out for early stopping, got {n}")
+    n_valid = min(max(1, int(round(n * fraction))), n - 1)
+    order = np.random.default_rng(seed).permutation(n)
+    return np.sort(order[n_valid:]), np.sort(order[:n_valid])
+
+
+class _Tensors:
+    """Inputs as torch tensors: ids column-major (one contiguous row of ids per embedded column)."""
+
+    def __init__(self, inputs: EncodedInputs, y: np.ndarray) -> None:
+        self.ids = torch.from_numpy(np.ascontiguousarray(inputs.cat_ids.T))
+        self.dense = torch.from_numpy(np.ascontiguousarray(inputs.dense, dtype=np.float32))
+        self.y = torch.from_numpy(np.ascontiguousarray(y, dtype=np.float32))
+
+    def __len__(self) -> int:
+        return len(self.y)
+
+    def permuted(self, order: torch.Tensor) -> _Tensors:
+        out = object.__new__(_Tensors)
+        out.ids = self.ids.index_select(1, order)
+        out.dense = self.dense.index_select(0, order)
+        out.y = self.y.index_select(0, order)
+        return out
+
+
+def _check_inputs(inputs: EncodedInputs, y: np.ndarray, cardinalities: list[int], what: str) -> None:
+    if len(inputs) != len(y):
+        raise ValueError(f"{what}: {len(inputs)} input rows but {len(y)} targets")
+    if inputs.cat_ids.shape[1] != len(cardinalities):
+        raise ValueError(f"{what}: {inputs.cat_ids.shape[1]} id columns for {len(cardinalities)} embedded columns")
+    if len(inputs):
+        low, high = inputs.cat_ids.min(axis=0), inputs.cat_ids.max(axis=0)
+        for j, card in enumerate(cardinalities):
+            if low[j] < 0 or high[j] >= card:
+                raise ValueError(
+                    f"{what}: ids of embedded column {j} lie in [{low[j]}, {high[j]}], outside [0, {card})"
+                )
+    if not np.all(np.isfinite(y)):
+        raise ValueError(f"{what}: the target has missing or infinite values")
+    if not np.all(np.isfinite(inputs.dense)):
+        raise ValueError(f"{what}: the dense inputs have missing or infinite values")
+
+
+def _evaluate(model: EntityNet, data: _Tensors, task: str) -> float:
+    """Mean loss over all rows (raw scale), computed without gradients in large slices."""
+    total = 0.0
+    with torch.no_grad():
+        for start in range(0, len(data), _EVAL_SLICE):
+            stop = start + _EVAL_SLICE
+            x = torch.cat([model.embed(data.ids[:, start:stop].T), data.dense[start:stop]], 1)
+            raw = model.head(x)
+            total += float(_loss(raw, data.y[start:stop], task)) * len(raw)
+    return total / max(len(data), 1)
+
+
+def _progress(enabled: bool):
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(
+        TextColumn("[bold]{task.description}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TextColumn("{task.fields[status]}"),
+        TimeRemainingColumn(),
+        disable=not enabled,
+        transient=False,
+    )
+
+
+def fit_network(
+    inputs: EncodedInputs,
+    y: np.ndarray,
+    *,
+    columns: list[str],
+    cardinalities: list[int],
+    sizes: list[int],
+    training: TrainingSpec,
+    task: str,
+    valid: tuple[EncodedInputs, np.ndarray] | None = None,
+    init_vectors: dict[str, np.ndarray] | None = None,
+    label: str = "training",
+) -> TrainResult:
+    """Train the network and return it with its vectors and per-epoch history.
+
+    ``y`` is on the transformed scale (regression) or 0/1 (binary). Without ``valid``, a seeded
+    ``training.validation_fraction`` of the rows is held out for early stopping. Training stops after
+    ``training.patience`` epochs without a lower validation loss, and the weights of the best epoch are
+    restored. ``init_vectors`` warm-starts tables column by column (rows beyond a given matrix keep their
+    random start, so a vocabulary that grew still trains its new rows).
+    """
+    started = time.perf_counter()
+    if task not in ("regression", "binary"):
+        raise ValueError(f"task must be 'regression' or 'binary', got {task!r}")
+    if not (len(columns) == len(cardinalities) == len(sizes)):
+        raise ValueError(f"{len(columns)} columns, {len(cardinalities)} cardinalities and {len(sizes)} sizes")
+    y = np.asarray(y, dtype=np.float64).reshape(-1)
+    _check_inputs(inputs, y, cardinalities, "training rows")
+    if task == "binary" and not np.all((y == 0) | (y == 1)):
+        raise ValueError("a binary target must be 0 or 1 on every row")
+    if valid is None:
+        train_rows, valid_rows = _holdout(len(y), training.validation_fraction, training.seed)
+        valid = (inputs.take(valid_rows), y[valid_rows])
+        inputs, y = inputs.take(train_rows), y[train_rows]
+    else:
+        valid = (valid[0], np.asarray(valid[1], dtype=np.float64).reshape(-1))
+        _check_inputs(valid[0], valid[1], cardinalities, "validation rows")
+    if len(y) == 0 or len(valid[1]) == 0:
+        raise ValueError("training needs at least one training row and one validation row")
+
+    # Regression learns a standardized target (Adam's step size is then on the scale of the output);
+    # the shift and scale are kept in the network so that it predicts on the transformed scale.
+    if task == "regression":
+        shift, scale = float(y.mean()), float(y.std())
+        scale = scale if scale > 0 and math.isfinite(scale) else 1.0
+    else:
+        shift, scale = 0.0, 1.0
+    train_data = _Tensors(inputs, (y - shift) / scale)
+    valid_data = _Tensors(valid[0], (valid[1] - shift) / scale)
+    n_dense = inputs.dense.shape[1]
+    threads = training.threads or default_threads(cardinalities, sizes, n_dense, training.hidden)
+
+    with _torch_state(threads, training.seed):
+        model = EntityNet(cardinalities, sizes, n_dense, training.hidden, training.dropout)
+        model.target_shift.fill_(shift)
+        model.target_scale.fill_(scale)
+        with torch.no_grad():
+            if task == "binary":
+                # Start from the base rate, so the first epochs learn structure rather than the mean.
+                rate = min(max(float(y.mean()), 1e-6), 1 - 1e-6)
+                model.output.bias.fill_(math.log(rate / (1 - rate)))
+            for j, column in enumerate(columns):
+                if init_vectors and column in init_vectors:
+                    _warm_start(model.embeddings[j].weight, np.asarray(init_vectors[column]), column)
+        history, best_epoch, best_loss = _train_loop(model, train_data, valid_data, training, task, label)
+    loss_scale = scale**2 if task == "regression" else 1.0
+    for row in history:
+        row["train_loss"] *= loss_scale
+        row["valid_loss"] *= loss_scale
+    model.eval()
+    vectors = dict(zip(columns, model.vectors(), strict=True))
+    return TrainResult(
+        model=model,
+        history=history,
+        best_epoch=best_epoch,
+        best_valid_loss=best_loss * loss_scale,
+        vectors=vectors,
+        seconds=time.perf_counter() - started,
+    )
+
+
+def _warm_start(weight: torch.Tensor, matrix: np.ndarray, column: str) -> None:
+    if matrix.ndim != 2 or matrix.shape[1] != weight.shape[1]:
+        raise ValueError(
+            f"init vectors of {column!r} have shape {matrix.shape}, the table needs width {weight.shape[1]}"
+        )
+    rows = min(len(matrix), len(weight))
+    weight[:rows] = torch.from_numpy(np.ascontiguousarray(matrix[:rows], dtype=np.float32))
+
+
+def _train_loop(
+    model: EntityNet, train: _Tensors, valid: _Tensors, training: TrainingSpec, task: str, label: str
+) -> tuple[list[dict], int, float]:
+    n = len(train)
+    batch = min(training.batch_size, n)
+    tables = [table.weight for table in model.embeddings]
+    for weight in tables:
+        weight.requires_grad_(False)  # updated by _RowAdam, outside autograd
+    dense_params = [p for name, p in model.named_parameters() if not name.startswith("embeddings.")]
+    dense_opt = _FlatAdam(dense_params, training.learning_rate, training.weight_decay)
+    row_opts = [_RowAdam(w, training.learning_rate, training.weight_decay) for w in tables]
+    offsets = np.cumsum([0, *model.sizes]).tolist()
+    shuffler = torch.Generator().manual_seed(training.seed)
+
+    best_loss, best_epoch, best_state, waited = math.inf, 0, None, 0
+    history: list[dict] = []
+    interactive = training.progress and sys.stdout.isatty()
+    batches_per_epoch = math.ceil(n / batch)
+    embedded = offsets[-1]
+    width = embedded + train.dense.shape[1]
+    try:
+        with _progress(interactive) as bar:
+            bar_task = bar.add_task(label, total=training.epochs * batches_per_epoch, status="")
+            for epoch in range(1, training.epochs + 1):
+                tick = time.perf_counter()
+                model.train()
+                data = train.permuted(torch.randperm(n, generator=shuffler))
+                total = torch.zeros(())
+                for b in range(batches_per_epoch):
+                    start, stop = b * batch, min((b + 1) * batch, n)
+                    ids = data.ids[:, start:stop]
+                    # The network's input row: looked-up vectors, then the dense columns. It is the autograd
+                    # leaf, so backward ends with the gradient of each looked-up vector (no table-sized tensor).
+                    x = torch.empty((stop - start, width))
+                    for j, weight in enumerate(tables):
+                        torch.index_select(weight, 0, ids[j], out=x[:, offsets[j] : offsets[j + 1]])
+                    x[:, embedded:] = data.dense[start:stop]
+                    x.requires_grad_(bool(tables))
+                    loss = _loss(model.head(x), data.y[start:stop], task)
+                    dense_opt.zero_grad()
+                    loss.backward()
+                    dense_opt.step()
+                    for j, opt in enumerate(row_opts):
+                        opt.step(ids[j], x.grad[:, offsets[j] : offsets[j + 1]])
+                    total += loss.detach() * (stop - start)
+                    if b % _PROGRESS_EVERY == _PROGRESS_EVERY - 1:
+                        bar.advance(bar_task, _PROGRESS_EVERY)
+                train_loss = float(total) / n
+                model.eval()
+                valid_loss = _evaluate(model, valid, task)
+                seconds = time.perf_counter() - tick
+                history.append(
+                    {
+                        "epoch": epoch,
+                        "train_loss": train_loss,
+                        "valid_loss": valid_loss,
+                        "seconds": seconds,
+                        "rows_per_second": n / seconds if seconds > 0 else float("inf"),
+                    }
+                )
+                if not math.isfinite(train_loss):
+                    raise FloatingPointError(
+                        f"{label}: the training loss became {train_loss} in epoch {epoch}; lower training.learning_rate"
+                    )
+                if valid_loss < best_loss:
+                    best_loss, best_epoch, waited = valid_loss, epoch, 0
+                    best_state = {k: t.detach().clone() for k, t in model.state_dict().items()}
+                else:
+                    waited += 1
+                bar.update(
+                    bar_task,
+                    completed=epoch * batches_per_epoch,
+                    status=f"epoch {epoch}: valid {valid_loss:.4g} (best {best_loss:.4g} @ {best_epoch})",
+                )
+                if waited >= training.patience:
+                    break
+    finally:
+        dense_opt.release()
+        for weight in tables:
+            weight.requires_grad_(True)
+    if best_state is not None:
+        model.load_state_dict(best_state)
+    return history, best_epoch, best_loss
+
+
+def predict(model: EntityNet, inputs: EncodedInputs, task: str, batch_size: int = 65536) -> np.ndarray:
+    """Regression: predictions on the transformed scale; binary: probabilities."""
+    model.eval()
+    ids = torch.from_numpy(np.ascontiguousarray(inputs.cat_ids, dtype=np.int64))
+    dense = torch.from_numpy(np.ascontiguousarray(inputs.dense, dtype=np.float32))
+    out = np.empty(len(inputs), dtype=np.float64)
+    with torch.no_grad():
+        for start in range(0, len(inputs), batch_size):
+            pred = model(ids[start : start + batch_size], dense[start : start + batch_size])
+            if task == "binary":
+                pred = torch.sigmoid(pred)
+            out[start : start + batch_size] = pred.numpy()
+    return out
+
+
+@task(name="train-vectors", cache_policy=NO_CACHE)
+def train_vectors(
+    inputs: EncodedInputs,
+    y: np.ndarray,
+    *,
+    columns: list[str],
+    cardinalities: list[int],
+    sizes: list[int],
+    training: TrainingSpec,
+    task: str,
+    valid: tuple[EncodedInputs, np.ndarray] | None = None,
+    init_vectors: dict[str, np.ndarray] | None = None,
+    label: str = "training",
+) -> TrainResult:
+    """Prefect task around :func:`fit_network`; no retries, since nothing here is I/O that could heal."""
+    return fit_network(
+        inputs,
+        y,
+        columns=columns,
+        cardinalities=cardinalities,
+        sizes=sizes,
+        training=training,
+        task=task,
+        valid=valid,
+        init_vectors=init_vectors,
+        label=label,
+    )
