@@ -274,6 +274,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--naive-batches", type=int, default=300, help="plain-loop batches timed for (a)")
     parser.add_argument("--naive-budget", type=float, default=180.0, help="seconds the plain loop may chase (b)")
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument(
+        "--hidden", default=",".join(str(h) for h in TrainingSpec().hidden),
+        help="dense layer widths, comma-separated (default: the spec's default)",
+    )
     args = parser.parse_args(argv)
     if args.quick:
         args.rows, args.valid_rows = 100_000, 10_000
@@ -292,6 +296,7 @@ def main(argv: list[str] | None = None) -> int:
         batch_size=args.batch_size,
         learning_rate=args.learning_rate,
         threads=args.threads,
+        hidden=[int(h) for h in args.hidden.split(",")],
         patience=args.epochs,
         progress=False,
         seed=args.seed,

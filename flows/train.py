@@ -12,7 +12,7 @@ from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
 from entivec.settings import project_home
-from entivec.tasks import registry, targets
+from entivec.tasks import audit, gate, registry, report, targets
 from entivec.tasks.bundle import BundleInputs, write_bundle_task
 from entivec.tasks.crossfit import cross_fit_vectors_task
 from entivec.tasks.evaluate import capped_rows, evaluate_downstream, vectors_for_ids
@@ -49,11 +49,6 @@ def check_ledger(cleaned) -> None:
 @task(name="earlier-vocabularies", retries=2, retry_delay_seconds=2)
 def earlier_vocabularies(name: str, version_or_alias: str):
     return registry.load_version(name, version_or_alias).vector_set.vocabularies
-
-
-@task(name="set-alias")
-def set_alias(name: str, alias: str, version: str) -> None:
-    registry.set_alias(name, alias, version)
 
 
 @flow(name="train", validate_parameters=False)
@@ -106,6 +101,7 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
             result, evidence, network_metrics, y_test, network_pred,
         )
         vector_folder = write_bundle_task(bundle, workdir)
+        gate.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
         metrics = {f"network_{k}": v for k, v in network_metrics.items()}
         for row in evidence.table.to_dict("records"):
             for key, value in row.items():
@@ -121,15 +117,20 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
             "entivec.rows_used": str(cleaned.ledger.rows_used),
             "entivec.primary_metric": evidence.primary_metric,
             "entivec.vectors_help": str(evidence.vectors_help).lower(),
+            gate.SPEC_PATH_TAG: str(Path(spec_path).resolve()),
             **{f"entivec.network_{k}": f"{v:.6g}" for k, v in network_metrics.items()},
         }
         with transaction():
             version = register_version_task(
                 spec=spec, run_id=run_id, vector_set_folder=vector_folder, version_tags=tags
             )
-            set_alias(spec.name, registry.STAGING, version)
+            audit.record_move_task(
+                spec.name, registry.STAGING, version, event="train", reason=f"trained from {spec_path}",
+                data_fingerprint=fingerprint["sha256"], details={"run_id": run_id, "spec_hash": spec.content_hash()},
+            )
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
+    report.publish_version_report_task(spec.name, version)
 
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,

@@ -13,6 +13,8 @@ from typing import Annotated, Any, Literal
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from entivec.schemas.promotion import PromotionSpec
+
 SPEC_VERSION = 1
 MODEL_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}$"
 
@@ -220,6 +222,7 @@ class Spec(_Strict):
     split: SplitSpec = SplitSpec()
     training: TrainingSpec = TrainingSpec()
     evaluation: EvaluationSpec = EvaluationSpec()
+    promotion: PromotionSpec = PromotionSpec()
 
     @model_validator(mode="after")
     def _columns_consistent(self) -> Spec:
@@ -311,7 +314,7 @@ def _key_path(loc: tuple[Any, ...]) -> str:
     for part in loc:
         if isinstance(part, int):
             out += f"[{part}]"
-        elif part in ("range", "fill", "drop_missing", "function-after[_shorthand()]"):
+        elif part in ("range", "fill", "drop_missing", "order", "nearer"):
             continue
         else:
             out += ("." if out else "") + str(part)

@@ -20,12 +20,14 @@ from prefect.transactions import get_transaction
 import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks import registry
-from entivec.tasks.lookup_model import VectorLookupModel, signature_for
+from entivec.tasks import lookup_model, registry
+from entivec.tasks.lookup_model import signature_for
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
 MAX_PARAM_LENGTH = 500
+# Read by MLflow, never imported here: importing it would declare the model as a side effect.
+LOOKUP_MODEL_CODE = Path(lookup_model.__file__).with_name("lookup_model_entry.py")
 
 
 def operator() -> str:
@@ -125,7 +127,8 @@ def register_version(
     with mlflow.start_run(run_id=run_id):
         info = mlflow.pyfunc.log_model(
             name="lookup_model",
-            python_model=VectorLookupModel(),
+            # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
+            python_model=str(LOOKUP_MODEL_CODE),
             artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
             signature=signature_for(vector_set),
             pip_requirements=LOOKUP_REQUIREMENTS,

@@ -12,6 +12,7 @@ os.environ["ENTIVEC_HOME"] = str(_SESSION_HOME)
 os.environ["PREFECT_HOME"] = str(_SESSION_HOME / "prefect")
 os.environ.pop("PREFECT_API_URL", None)
 os.environ.pop("MLFLOW_TRACKING_URI", None)
+os.environ.pop("MLFLOW_REGISTRY_URI", None)
 for key, value in {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
     "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",
@@ -55,7 +56,9 @@ def entivec_home(tmp_path, monkeypatch, empty_store):
     home.mkdir()
     shutil.copy(empty_store, home / "mlflow.db")
     monkeypatch.setenv("ENTIVEC_HOME", str(home))
+    # mlflow.set_tracking_uri/set_registry_uri export these; a stale one would point at the previous store.
     monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
+    monkeypatch.delenv("MLFLOW_REGISTRY_URI", raising=False)
     return home
 
 

@@ -105,12 +105,13 @@ def test_failure_after_registration_leaves_no_version(
     tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch, registered_versions
 ):
     from entivec.flows import train as train_module
-    from entivec.tasks import registry
+    from entivec.tasks import audit
 
-    def broken(*args, **kwargs):
-        raise RuntimeError("alias store unavailable")
+    def broken(point: str) -> None:
+        if point == "before_move":
+            raise RuntimeError("alias store unavailable")
 
-    monkeypatch.setattr(registry, "set_alias", broken)
+    monkeypatch.setattr(audit, "_fault_hook", broken)
     spec_path = write_case(tmp_path, diamonds_frame.head(1_500))
     with pytest.raises(RuntimeError, match="alias store unavailable"):
         train_module.train(spec_path)

@@ -27,8 +27,11 @@ def generate(rows: int = 60_000, seed: int = 7, depots: int = 240, families: int
     depot_region = rng.integers(0, len(REGIONS), size=depots)
     depot_xy = centres[depot_region] + rng.normal(0, 7, size=(depots, 2))
     depot_names = [f"{REGIONS[r][:3].upper()}-{i:03d}" for i, r in enumerate(depot_region)]
-    # Demand rises towards the map's north-east and dips in a band through the middle.
-    depot_effect = 0.012 * (depot_xy[:, 0] + depot_xy[:, 1]) - 0.5 * np.exp(-((depot_xy[:, 1] - 50) ** 2) / 200)
+    # Demand rises towards the map's north-east and dips in a band through the middle; east-west position
+    # sets how strongly a depot reacts to the weather, north-south how much it gains from rail deliveries.
+    # Both map coordinates therefore shape demand, and the vectors can recover the map.
+    east, north = (depot_xy[:, 0] - 50) / 30, (depot_xy[:, 1] - 50) / 30
+    depot_effect = 0.15 * (east + north) - 0.5 * np.exp(-((depot_xy[:, 1] - 50) ** 2) / 200)
     depot_weight = rng.dirichlet(np.full(depots, 0.8))
 
     shelf_life = np.sort(rng.uniform(1, 60, size=families))  # days
@@ -56,7 +59,9 @@ def generate(rows: int = 60_000, seed: int = 7, depots: int = 240, families: int
         + np.where(has_campaign, campaign_lift[c], 0.0)
         + np.array([0.0, 0.05, 0.05, 0.1, 0.25, -0.3])[weekday]
         + np.array([0.0, 0.35, -0.4])[channel]
+        + np.where(channel == 1, 0.3 * north[d], 0.0)
         - 0.015 * np.abs(temperature - 15)
+        + 0.03 * east[d] * (temperature - 12)
         - 0.01 * np.nan_to_num(return_rate)
         + rng.normal(0, 0.25, rows)
     )

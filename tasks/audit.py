@@ -1,0 +1,556 @@
+"""The audit history of a registered model: every alias move, append-only, stored in the registry itself.
+
+Storage. Each entry is one tag of the registered model, ``entivec.audit.<seq>`` (six digits), holding the
+entry as compact JSON: when, event, alias, from which version to which, who, why, the gate's verdict and
+key figures, the data fingerprint. Once an entry's outcome is known, a second tag ``entivec.audit.<seq>.state``
+records it (``done``, ``repaired``, ``abandoned`` or ``unresolved``). Neither key is ever written twice,
+so the log only grows. Registered-model tags live in the tracking store's own tables on every MLflow
+backend (SQLite, PostgreSQL/MySQL behind a tracking server, Databricks), so everyone who uses the same store
+sees the same history and it survives restarts; nothing is kept in a private side file. (Anyone with write
+access to the registry can still delete a tag by hand; guard the server with its own permissions.)
+
+Atomic pairs. A move is written as intent first, then the alias moves, then the state is set:
+
+    1. append entry (no state yet: pending)   2. move the alias   3. state = done
+
+A crash after 1 leaves a pending entry. Every lifecycle command begins with ``repair``, which settles each
+pending entry against the alias as it is now: at the entry's target → ``repaired`` (the move happened);
+still at its origin → ``abandoned`` (it never did); anywhere else → ``unresolved``. ``repair`` then replays
+the settled entries and, when an alias is not where the history says (moved with another tool, or its
+version deleted), appends an ``outside_move`` entry, so the history and the aliases always agree.
+
+Locking. Writes happen inside ``locked(name)``, which holds a per-model lock:
+
+- SQLite store (the embedded default): an exclusive ``fcntl`` lock on a file next to the database. The
+  operating system releases it when its process dies, so a crash never leaves it held. Exact for every
+  process on the machine; the store file must not be shared over a network file system whose locks are
+  unreliable (e.g. some NFS set-ups).
+- Any other backend: a lease, i.e. a registered model named ``<name>.entivec-lease`` created for the
+  duration. Creating a registered model whose name exists fails atomically in the store's database (a
+  unique key), so two clients cannot both hold it. A lease left by a crashed client expires after
+  ``LEASE_SECONDS`` and the next client breaks it; a client stalled longer than that while holding it
+  could overlap with the breaker (the critical section is a handful of registry calls, far shorter). The
+  lease shows in the registry's model list while held.
+
+Within the lock the appended entry is read back and checked against its writer's token, and a promotion
+checks (compare-and-check) that production is still the version its gate judged against.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import socket
+import time
+import uuid
+from collections.abc import Callable, Iterator
+from dataclasses import asdict, dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+from mlflow.exceptions import MlflowException
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+
+from entivec.settings import tracking_uri
+from entivec.tasks import registry
+from entivec.tasks.track import now_iso, operator
+
+try:  # POSIX only; elsewhere the registry lease is used
+    import fcntl
+except ImportError:  # pragma: no cover - Windows
+    fcntl = None  # type: ignore[assignment]
+
+AUDIT_PREFIX = "entivec.audit."
+STATE_SUFFIX = ".state"
+LEASE_SUFFIX = ".entivec-lease"
+LEASE_SECONDS = 600
+LOCK_MODE_VARIABLE = "ENTIVEC_LIFECYCLE_LOCK"  # auto (default) | file | registry
+
+EVENTS = ("train", "promote", "forced_promote", "rollback", "refused", "outside_move", "move")
+SETTLED = ("done", "repaired")  # states of entries whose move happened
+# MLflow's SQL schema holds registered-model tag values in VARCHAR(5000); stay below it on every backend.
+MAX_ENTRY_CHARS = 4800
+
+
+class AuditError(RuntimeError):
+    """The history could not be written consistently (a lock not obtained, a concurrent change)."""
+
+
+class ConcurrentChange(AuditError):
+    """An alias moved between the moment a decision was made and the moment it was to be applied."""
+
+
+_ANY = object()
+
+
+def _no_fault(point: str) -> None:
+    """Hook between the steps of a move; tests replace it to simulate a crash at ``point``."""
+
+
+_fault_hook: Callable[[str], None] = _no_fault
+
+
+@dataclass
+class AuditEntry:
+    seq: int
+    at: str
+    event: str
+    alias: str
+    from_version: str | None
+    to_version: str | None
+    by: str
+    reason: str
+    verdict: str = "n/a"  # pass | fail | forced | n/a
+    data_fingerprint: str = ""
+    details: dict[str, Any] = field(default_factory=dict)
+    token: str = ""
+    state: str = "pending"
+    state_note: str = ""
+    state_at: str = ""
+
+    def to_record(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @property
+    def moved(self) -> bool:
+        """True when the alias really moved (a settled move; a refusal moves nothing)."""
+        return self.state in SETTLED and self.event != "refused"
+
+
+def _entry_key(seq: int) -> str:
+    return f"{AUDIT_PREFIX}{seq:06d}"
+
+
+def _encode(entry: AuditEntry) -> str:
+    body = {k: v for k, v in entry.to_record().items() if k not in ("seq", "state", "state_note", "state_at")}
+    text = json.dumps(body, separators=(",", ":"), default=str, ensure_ascii=False)
+    if len(text) > MAX_ENTRY_CHARS:
+        # Keep the verdict's headline; the full evidence stays in the gate's evidence run.
+        keep = ("figures", "evidence_run", "gate_data_fingerprint", "failed_checks")
+        details = {k: entry.details[k] for k in keep if k in entry.details}
+        details["truncated"] = True
+        if "failed_checks" in details:
+            details["failed_checks"] = details["failed_checks"][:5]
+        body["details"] = details
+        body["reason"] = body["reason"][:1000]
+        text = json.dumps(body, separators=(",", ":"), default=str, ensure_ascii=False)
+        if len(text) > MAX_ENTRY_CHARS:
+            body["details"] = {k: details[k] for k in ("evidence_run", "truncated") if k in details}
+            text = json.dumps(body, separators=(",", ":"), default=str, ensure_ascii=False)
+    return text
+
+
+def _model_tags(name: str) -> dict[str, str]:
+    registry.check_name(name)
+    try:
+        return dict(registry.client().get_registered_model(name).tags)
+    except MlflowException:
+        registry.list_versions(name)  # raises the registry's own message for an unknown name
+        raise
+
+
+def read_history(name: str) -> list[AuditEntry]:
+    """Every entry of ``name``'s history in order, as stored (no repair)."""
+    tags = _model_tags(name)
+    entries = []
+    for key, value in tags.items():
+        if not key.startswith(AUDIT_PREFIX) or key.endswith(STATE_SUFFIX):
+            continue
+        suffix = key.removeprefix(AUDIT_PREFIX)
+        if not suffix.isdigit():
+            continue
+        body = json.loads(value)
+        entry = AuditEntry(seq=int(suffix), **{k: v for k, v in body.items() if k in AuditEntry.__dataclass_fields__})
+        state = tags.get(key + STATE_SUFFIX)
+        if state:
+            settled = json.loads(state)
+            entry.state, entry.state_note, entry.state_at = settled["state"], settled.get("note", ""), settled["at"]
+        entries.append(entry)
+    return sorted(entries, key=lambda e: e.seq)
+
+
+def replay(entries: list[AuditEntry]) -> dict[str, str]:
+    """Where each alias stands according to the settled moves of the history."""
+    where: dict[str, str] = {}
+    for e in entries:
+        if not e.moved:
+            continue
+        if e.to_version is None:
+            where.pop(e.alias, None)
+        else:
+            where[e.alias] = e.to_version
+    return where
+
+
+def holders(entries: list[AuditEntry], alias: str = registry.PRODUCTION) -> list[str]:
+    """The chain of versions an alias has held, oldest first; a rollback steps back one link.
+
+    The last element is the alias's version now; the one before it is what a rollback restores.
+    """
+    chain: list[str] = []
+    for e in entries:
+        if not e.moved or e.alias != alias:
+            continue
+        if e.to_version is None:
+            chain.clear()
+        elif e.event == "rollback":
+            if chain:
+                chain.pop()
+            if not chain or chain[-1] != e.to_version:
+                chain.append(e.to_version)
+        else:
+            chain.append(e.to_version)
+    return chain
+
+
+# --- the lock ---------------------------------------------------------------------------------------------------
+
+
+def _lock_mode() -> str:
+    mode = os.environ.get(LOCK_MODE_VARIABLE, "auto").strip().lower()
+    if mode not in ("auto", "file", "registry"):
+        raise AuditError(f"{LOCK_MODE_VARIABLE}={mode!r}: expected auto, file or registry")
+    uri = tracking_uri()
+    if mode == "auto":
+        return "file" if uri.startswith("sqlite:///") and fcntl is not None else "registry"
+    if mode == "file" and (not uri.startswith("sqlite:///") or fcntl is None):
+        raise AuditError("a file lock needs a local SQLite tracking store on a POSIX system")
+    return mode
+
+
+def _holder() -> str:
+    return f"{operator()}@{socket.gethostname()} pid {os.getpid()}"
+
+
+@contextlib.contextmanager
+def _file_lock(name: str, timeout: float) -> Iterator[None]:
+    db = Path(tracking_uri().removeprefix("sqlite:///"))
+    db.parent.mkdir(parents=True, exist_ok=True)
+    path = db.with_name(f"{db.name}.lifecycle-{name}.lock")
+    with open(path, "a+", encoding="utf-8") as handle:
+        deadline = time.monotonic() + timeout
+        while True:
+            try:
+                fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() > deadline:
+                    handle.seek(0)
+                    raise AuditError(
+                        f"model {name!r} is locked by another lifecycle command ({handle.read().strip() or 'unknown'})"
+                        f"; waited {timeout:.0f} s"
+                    ) from None
+                time.sleep(0.05)
+        try:
+            handle.seek(0)
+            handle.truncate()
+            handle.write(f"{_holder()} since {now_iso()}\n")
+            handle.flush()
+            yield
+        finally:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_UN)
+
+
+@contextlib.contextmanager
+def _registry_lease(name: str, timeout: float) -> Iterator[None]:
+    c = registry.client()
+    lease = f"{name}{LEASE_SUFFIX}"
+    token = uuid.uuid4().hex
+    deadline = time.monotonic() + timeout
+    while True:
+        expires = (datetime.now(UTC) + timedelta(seconds=LEASE_SECONDS)).isoformat(timespec="seconds")
+        try:
+            c.create_registered_model(
+                lease,
+                tags={
+                    "entivec.lease.token": token,
+                    "entivec.lease.expires": expires,
+                    "entivec.lease.holder": _holder(),
+                },
+                description=f"entivec lifecycle lease of model {name!r}; removed when released",
+            )
+            break
+        except MlflowException as exc:
+            # Taken: the store reports the name as existing, or (MLflow looks the holder up to word its
+            # message) as already gone again when the holder released it meanwhile. Either way: wait, retry.
+            if exc.error_code not in ("RESOURCE_ALREADY_EXISTS", "RESOURCE_DOES_NOT_EXIST"):
+                raise
+        _break_stale_lease(lease)
+        if time.monotonic() > deadline:
+            raise AuditError(f"model {name!r} is locked by another lifecycle command (lease {lease!r}); "
+                             f"waited {timeout:.0f} s")
+        time.sleep(0.1)
+    try:
+        yield
+    finally:
+        with contextlib.suppress(MlflowException):
+            if c.get_registered_model(lease).tags.get("entivec.lease.token") == token:
+                c.delete_registered_model(lease)
+
+
+def _break_stale_lease(lease: str) -> None:
+    c = registry.client()
+    try:
+        tags = c.get_registered_model(lease).tags
+    except MlflowException:
+        return  # released meanwhile
+    expires = tags.get("entivec.lease.expires")
+    if expires and datetime.fromisoformat(expires) < datetime.now(UTC):
+        with contextlib.suppress(MlflowException):
+            # Only the lease seen stale is removed: a fresh one carries another token.
+            if c.get_registered_model(lease).tags.get("entivec.lease.token") == tags.get("entivec.lease.token"):
+                c.delete_registered_model(lease)
+
+
+# --- writing ----------------------------------------------------------------------------------------------------
+
+
+class Session:
+    """What may be done while holding a model's lifecycle lock; obtained from ``locked``."""
+
+    def __init__(self, name: str) -> None:
+        self.name = name
+
+    def entries(self) -> list[AuditEntry]:
+        return read_history(self.name)
+
+    def aliases(self) -> dict[str, str]:
+        return registry.aliases_of(self.name)
+
+    def _append(self, entry: AuditEntry) -> AuditEntry:
+        c = registry.client()
+        tags = _model_tags(self.name)
+        seqs = [int(k.removeprefix(AUDIT_PREFIX)) for k in tags
+                if k.startswith(AUDIT_PREFIX) and k.removeprefix(AUDIT_PREFIX).isdigit()]
+        entry.seq = max(seqs, default=0) + 1
+        entry.token = uuid.uuid4().hex
+        key = _entry_key(entry.seq)
+        c.set_registered_model_tag(self.name, key, _encode(entry))
+        stored = _model_tags(self.name).get(key, "")
+        if json.loads(stored or "{}").get("token") != entry.token:
+            raise AuditError(f"history entry {entry.seq} of {self.name!r} was written by another client at the "
+                             "same time; is the lifecycle lock bypassed?")
+        return entry
+
+    def _settle(self, entry: AuditEntry, state: str, note: str = "") -> None:
+        key = _entry_key(entry.seq) + STATE_SUFFIX
+        if key in _model_tags(self.name):
+            raise AuditError(f"history entry {entry.seq} of {self.name!r} is already settled")
+        entry.state, entry.state_note, entry.state_at = state, note, now_iso()
+        registry.client().set_registered_model_tag(
+            self.name, key, json.dumps({"state": state, "note": note, "at": entry.state_at}, separators=(",", ":"))
+        )
+
+    def record(
+        self,
+        *,
+        event: str,
+        alias: str,
+        from_version: str | None,
+        to_version: str | None,
+        by: str | None,
+        reason: str,
+        verdict: str = "n/a",
+        data_fingerprint: str = "",
+        details: dict[str, Any] | None = None,
+    ) -> AuditEntry:
+        """Append an entry that moves nothing (a refused promotion), settled at once."""
+        entry = self._new(event, alias, from_version, to_version, by, reason, verdict, data_fingerprint, details)
+        self._append(entry)
+        self._settle(entry, "done")
+        return entry
+
+    def move(
+        self,
+        alias: str,
+        version: str,
+        *,
+        event: str,
+        by: str | None,
+        reason: str,
+        verdict: str = "n/a",
+        data_fingerprint: str = "",
+        details: dict[str, Any] | None = None,
+        expected_from: Any = _ANY,
+    ) -> AuditEntry:
+        """Move ``alias`` to ``version`` with its history entry: intent, move, settle.
+
+        ``expected_from`` (a version or None) makes the move conditional on where the alias stands now.
+        """
+        registry.check_alias(alias)
+        version = str(version)
+        registry.resolve(self.name, version)  # a missing version gets the registry's own message
+        current = self.aliases().get(alias)
+        if expected_from is not _ANY and current != (None if expected_from is None else str(expected_from)):
+            raise ConcurrentChange(
+                f"{alias} of {self.name!r} moved meanwhile: it is {_v(current)}, expected {_v(expected_from)}; "
+                "nothing was changed, run the command again to decide against the current state"
+            )
+        if current == version:
+            raise AuditError(f"{alias} of {self.name!r} already points to version {version}; nothing to move")
+        entry = self._new(event, alias, current, version, by, reason, verdict, data_fingerprint, details)
+        self._append(entry)
+        _fault_hook("before_move")
+        registry.client().set_registered_model_alias(self.name, alias, version)
+        _fault_hook("after_move")
+        self._settle(entry, "done")
+        return entry
+
+    def _new(self, event, alias, from_version, to_version, by, reason, verdict, data_fingerprint, details):
+        if event not in EVENTS:
+            raise ValueError(f"unknown history event {event!r}; expected one of {', '.join(EVENTS)}")
+        return AuditEntry(
+            seq=0,
+            at=now_iso(),
+            event=event,
+            alias=alias,
+            from_version=None if from_version is None else str(from_version),
+            to_version=None if to_version is None else str(to_version),
+            by=by or operator(),
+            reason=reason,
+            verdict=verdict,
+            data_fingerprint=data_fingerprint or "",
+            details=dict(details or {}),
+        )
+
+    def repair(self) -> list[AuditEntry]:
+        """Settle interrupted moves and record moves made outside entivec; returns the entries written or settled."""
+        touched: list[AuditEntry] = []
+        aliases = self.aliases()
+        entries = self.entries()
+        for e in entries:
+            if e.state != "pending":
+                continue
+            now = aliases.get(e.alias)
+            if now == e.to_version:
+                self._settle(e, "repaired", "interrupted after the alias moved; the move stands (settled by repair)")
+            elif now == e.from_version:
+                self._settle(e, "abandoned", "interrupted before the alias moved; nothing changed")
+            else:
+                self._settle(e, "unresolved", f"interrupted; {e.alias} was found at {_v(now)}")
+            touched.append(e)
+        expected = replay(entries)
+        for alias in sorted(set(expected) | set(aliases) & {registry.STAGING, registry.PRODUCTION}):
+            if aliases.get(alias) != expected.get(alias):
+                touched.append(
+                    self.record(
+                        event="outside_move",
+                        alias=alias,
+                        from_version=expected.get(alias),
+                        to_version=aliases.get(alias),
+                        by="unknown",
+                        reason=f"found by entivec: {alias} is at {_v(aliases.get(alias))} but the history left it "
+                        f"at {_v(expected.get(alias))} (moved by another tool, or its version deleted)",
+                    )
+                )
+        return touched
+
+
+def _v(version: Any) -> str:
+    return "no version" if version is None else f"version {version}"
+
+
+@contextlib.contextmanager
+def locked(name: str, *, timeout: float = 300.0, repair: bool = True) -> Iterator[Session]:
+    """Hold ``name``'s lifecycle lock; the history is repaired first unless ``repair`` is False."""
+    registry.check_name(name)
+    registry.list_versions(name)  # an unknown model gets a clear message before any lock is taken
+    lock = _file_lock if _lock_mode() == "file" else _registry_lease
+    with lock(name, timeout):
+        session = Session(name)
+        if repair:
+            session.repair()
+        yield session
+
+
+def record_move(
+    name: str,
+    alias: str,
+    version: str,
+    *,
+    event: str,
+    by: str | None = None,
+    reason: str = "",
+    details: dict[str, Any] | None = None,
+    data_fingerprint: str = "",
+    verdict: str = "n/a",
+) -> AuditEntry:
+    """Move an alias and record it in the history, as one locked, crash-safe step (e.g. train → staging)."""
+    with locked(name) as session:
+        return session.move(
+            alias, version, event=event, by=by, reason=reason, details=details,
+            data_fingerprint=data_fingerprint, verdict=verdict,
+        )
+
+
+@task(name="record-alias-move", cache_policy=NO_CACHE)
+def record_move_task(
+    name: str,
+    alias: str,
+    version: str,
+    *,
+    event: str,
+    by: str | None = None,
+    reason: str = "",
+    details: dict[str, Any] | None = None,
+    data_fingerprint: str = "",
+    verdict: str = "n/a",
+) -> AuditEntry:
+    """Prefect task around ``record_move`` (no retries: a move is not blindly repeated; repair settles it)."""
+    return record_move(name, alias, version, event=event, by=by, reason=reason, details=details,
+                       data_fingerprint=data_fingerprint, verdict=verdict)
+
+
+def history(name: str, *, repair: bool = True) -> list[AuditEntry]:
+    """The history of ``name``, repaired first (under the lock) unless ``repair`` is False."""
+    if not repair:
+        return read_history(name)
+    with locked(name) as session:
+        return session.entries()
+
+
+# --- showing ----------------------------------------------------------------------------------------------------
+
+
+def figures_text(details: dict[str, Any]) -> str:
+    """The gate's headline figures of an entry as one line."""
+    figures = details.get("figures") or {}
+    parts = [f"{k} {v}" for k, v in figures.items()]
+    failed = details.get("failed_checks") or []
+    if failed:
+        parts.append("failed: " + "; ".join(failed))
+    return "; ".join(parts)
+
+
+def history_frame(entries: list[AuditEntry]) -> pd.DataFrame:
+    """One row per entry, for tables and CSV (details flattened to text)."""
+    columns = ["seq", "at", "event", "alias", "from_version", "to_version", "by", "reason", "verdict",
+               "figures", "data_fingerprint", "evidence_run", "state", "state_note"]
+    rows = [
+        {
+            "seq": e.seq,
+            "at": e.at,
+            "event": e.event,
+            "alias": e.alias,
+            "from_version": e.from_version or "",
+            "to_version": e.to_version or "",
+            "by": e.by,
+            "reason": e.reason,
+            "verdict": e.verdict,
+            "figures": figures_text(e.details),
+            "data_fingerprint": e.data_fingerprint,
+            "evidence_run": e.details.get("evidence_run", ""),
+            "state": e.state,
+            "state_note": e.state_note,
+        }
+        for e in entries
+    ]
+    return pd.DataFrame(rows, columns=columns)
+
+
+def history_json(entries: list[AuditEntry]) -> str:
+    return json.dumps([e.to_record() for e in entries], indent=1, default=str, ensure_ascii=False)
