@@ -487,22 +487,8 @@ def record_move(
         )
 
 
-@task(name="record-alias-move", cache_policy=NO_CACHE)
-def record_move_task(
-    name: str,
-    alias: str,
-    version: str,
-    *,
-    event: str,
-    by: str | None = None,
-    reason: str = "",
-    details: dict[str, Any] | None = None,
-    data_fingerprint: str = "",
-    verdict: str = "n/a",
-) -> AuditEntry:
-    """Prefect task around ``record_move`` (no retries: a move is not blindly repeated; repair settles it)."""
-    return record_move(name, alias, version, event=event, by=by, reason=reason, details=details,
-                       data_fingerprint=data_fingerprint, verdict=verdict)
+# No retries: a move is not blindly repeated; the repair step settles an interrupted one.
+record_move_task = task(name="record-alias-move", cache_policy=NO_CACHE)(record_move)
 
 
 def history(name: str, *, repair: bool = True) -> list[AuditEntry]:

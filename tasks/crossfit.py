@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from prefect import task
+from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.spec import Spec
 from entivec.tasks.evaluate import out_of_fold_vectors
@@ -36,13 +37,4 @@ def cross_fit_vectors(
     )
 
 
-@task(name="cross-fit-vectors")
-def cross_fit_vectors_task(
-    inputs: EncodedInputs,
-    y: np.ndarray,
-    spec: Spec,
-    cardinalities: list[int],
-    sizes: list[int],
-    reference: dict[str, np.ndarray],
-) -> dict[str, np.ndarray]:
-    return cross_fit_vectors(inputs, y, spec, cardinalities, sizes, reference)
+cross_fit_vectors_task = task(name="cross-fit-vectors", cache_policy=NO_CACHE)(cross_fit_vectors)

@@ -554,24 +554,5 @@ def _verdict(table: pd.DataFrame, spec: Spec, primary: str) -> tuple[bool, str]:
     return vectors_help, "\n".join(lines)
 
 
-@task(name="evaluate-downstream", cache_policy=NO_CACHE)
-def evaluate_downstream(
-    train: pd.DataFrame,
-    test: pd.DataFrame,
-    spec: Spec,
-    *,
-    vectors_oof: dict[str, np.ndarray],
-    vectors_in_sample: dict[str, np.ndarray],
-    vectors_test: dict[str, np.ndarray],
-    network_test_pred: np.ndarray | None = None,
-) -> Evidence:
-    """Prefect task around ``compare_downstream`` (not cached: its inputs are whole tables)."""
-    return compare_downstream(
-        train,
-        test,
-        spec,
-        vectors_oof=vectors_oof,
-        vectors_in_sample=vectors_in_sample,
-        vectors_test=vectors_test,
-        network_test_pred=network_test_pred,
-    )
+# The Prefect task is the plain function itself (not cached: its inputs are whole tables).
+evaluate_downstream = task(name="evaluate-downstream", cache_policy=NO_CACHE)(compare_downstream)

@@ -702,30 +702,5 @@ def predict(model: EntityNet, inputs: EncodedInputs, task: str, batch_size: int 
     return out
 
 
-@task(name="train-vectors", cache_policy=NO_CACHE)
-def train_vectors(
-    inputs: EncodedInputs,
-    y: np.ndarray,
-    *,
-    columns: list[str],
-    cardinalities: list[int],
-    sizes: list[int],
-    training: TrainingSpec,
-    task: str,
-    valid: tuple[EncodedInputs, np.ndarray] | None = None,
-    init_vectors: dict[str, np.ndarray] | None = None,
-    label: str = "training",
-) -> TrainResult:
-    """Prefect task around :func:`fit_network`; no retries, since nothing here is I/O that could heal."""
-    return fit_network(
-        inputs,
-        y,
-        columns=columns,
-        cardinalities=cardinalities,
-        sizes=sizes,
-        training=training,
-        task=task,
-        valid=valid,
-        init_vectors=init_vectors,
-        label=label,
-    )
+# The Prefect task is the plain function itself; no retries, since nothing in it is I/O that could heal.
+train_vectors = task(name="train-vectors", cache_policy=NO_CACHE)(fit_network)
