@@ -84,7 +84,7 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
     network_metrics = task_metrics(spec.target.task, y_test, network_pred)
 
     rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
-    subset = type(train_inputs)(train_inputs.cat_ids[rows], train_inputs.dense[rows])
+    subset = train_inputs.take(rows)
     oof = cross_fit_vectors_task(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
     in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
     on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
