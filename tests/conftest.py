@@ -25,6 +25,21 @@ for key, value in {
 import pytest  # noqa: E402
 
 
+def _register_support_module(name: str, filename: str) -> None:
+    """Load a shared helper file of the tests once, importable by name (no tests/__init__.py here)."""
+    import importlib.util
+    import sys
+
+    spec = importlib.util.spec_from_file_location(name, Path(__file__).with_name(filename))
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+
+
+_register_support_module("entivec_test_vector_fixtures", "vector_fixtures.py")
+_register_support_module("entivec_test_lifecycle_support", "lifecycle_support.py")
+
+
 @pytest.fixture(scope="session")
 def prefect_server():
     """One temporary Prefect server for every test that runs a real flow."""

@@ -2,30 +2,18 @@
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import math
-import sys
 from datetime import datetime
 from pathlib import Path
 
+import entivec_test_vector_fixtures as fx  # noqa: E402  (registered by conftest.py)
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-
-def _fixtures():
-    name = "entivec_test_vector_fixtures"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).with_name("vector_fixtures.py"))
-        sys.modules[name] = importlib.util.module_from_spec(spec)
-        spec.loader.exec_module(sys.modules[name])
-    return sys.modules[name]
-
-
-fx = _fixtures()
 CATEGORY_COLUMNS = list(fx.STATS)
 
 

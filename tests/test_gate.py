@@ -3,12 +3,12 @@ expectations on the GIA clarity scale, sanity checks and the choice of judged ro
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import shutil
 from pathlib import Path
 from types import SimpleNamespace
 
+import entivec_test_lifecycle_support as support  # noqa: E402  (registered by conftest.py)
 import numpy as np
 import pandas as pd
 import pytest
@@ -20,10 +20,6 @@ from threadpoolctl import threadpool_limits
 from entivec.schemas.promotion import NearerExpectation, OrderExpectation, PromotionSpec
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import UNKNOWN, Vocabulary
-
-_spec = importlib.util.spec_from_file_location("lifecycle_support", Path(__file__).with_name("lifecycle_support.py"))
-support = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(support)
 
 ROWS = 24_000  # enough held-out rows (7,200) for the paired interval to separate good from shuffled vectors
 

@@ -3,13 +3,11 @@ versions trained on an open dataset; promotions at once from two processes; repa
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import os
 import subprocess
 import sys
 import textwrap
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -17,9 +15,7 @@ import pytest
 
 pytestmark = pytest.mark.integration
 
-_spec = importlib.util.spec_from_file_location("lifecycle_support", Path(__file__).with_name("lifecycle_support.py"))
-support = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(support)
+import entivec_test_lifecycle_support as support  # noqa: E402  (registered by conftest.py)
 
 MODEL = support.MODEL
 # Non-inferiority against production: an equally good retrain passes (not more than 5% worse), vectors

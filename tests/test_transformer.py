@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import importlib.util
 import pickle
-import sys
 import warnings
-from pathlib import Path
 
+import entivec_test_vector_fixtures as fx  # noqa: E402  (registered by conftest.py)
 import numpy as np
 import pandas as pd
 import pytest
@@ -16,18 +14,6 @@ from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import Ridge
 from sklearn.model_selection import GridSearchCV
 from sklearn.pipeline import make_pipeline
-
-
-def _fixtures():
-    name = "entivec_test_vector_fixtures"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).with_name("vector_fixtures.py"))
-        sys.modules[name] = importlib.util.module_from_spec(spec)
-        spec.loader.exec_module(sys.modules[name])
-    return sys.modules[name]
-
-
-fx = _fixtures()
 
 
 @pytest.fixture(scope="module")
