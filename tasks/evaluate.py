@@ -240,7 +240,11 @@ def capped_rows(n_rows: int, max_rows: int | None, seed: int) -> np.ndarray:
     return np.sort(np.random.default_rng(seed).choice(n_rows, size=max_rows, replace=False))
 
 
-def _target(frame: pd.DataFrame, spec: Spec, which: str) -> np.ndarray:
+def target_values(frame: pd.DataFrame, spec: Spec, which: str) -> np.ndarray:
+    """The target on its original scale: float for regression, 0/1 integers for binary.
+
+    ``which`` names the rows in the error message ("training", "test", ...).
+    """
     col = spec.target.column
     if col not in frame.columns:
         raise ValueError(f"{which} rows have no target column {col!r}")
@@ -290,13 +294,19 @@ def _stacked(parts: list[np.ndarray], n_rows: int) -> np.ndarray:
     return np.hstack([p.astype(np.float32, copy=False) for p in parts])
 
 
-def _feature_sets(
+def feature_sets(
     train: pd.DataFrame,
     test: pd.DataFrame,
     spec: Spec,
     y_fit: np.ndarray,
     vectors: dict[str, tuple[np.ndarray, np.ndarray]],
 ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """The downstream feature sets, each as (train matrix, test matrix), fitted on ``train`` only.
+
+    Always ``baseline`` (numerics and one-hot columns, no embedded category), ``onehot`` and
+    ``target_encoding`` (cross-fitted inside scikit-learn's TargetEncoder); then one set per entry of
+    ``vectors`` (name → (train vectors, test vectors)), each added to the baseline columns.
+    """
     ev = spec.evaluation
     numeric = spec.numeric_names
     num_tr = (
@@ -333,7 +343,7 @@ def _feature_sets(
     return sets
 
 
-def _model(name: str, task: str, seed: int):
+def downstream_model(name: str, task: str, seed: int):
     """A downstream model with settings chosen for speed at up to a few hundred thousand rows on 2 cores.
 
     - random_forest: 100 trees, leaves of at least 5 rows (smoother, smaller trees than scikit-learn's default
@@ -357,7 +367,8 @@ def _model(name: str, task: str, seed: int):
     raise ValueError(f"unknown downstream model {name!r}")
 
 
-def _predict(model, X: np.ndarray, task: str, transform: str) -> np.ndarray:
+def predict_downstream(model, X: np.ndarray, task: str, transform: str) -> np.ndarray:
+    """Predictions on the original target scale (regression) or the positive-class probability (binary)."""
     # float64 throughout: models fed float32 features may answer in float32.
     if task == "binary":
         classes = list(model.classes_)
@@ -419,8 +430,8 @@ def compare_downstream(
     absent = [c for c in spec.feature_columns if c not in train.columns or c not in test.columns]
     if absent:
         raise ValueError(f"train/test rows lack spec column(s) {absent}")
-    y_train_all = _target(train, spec, "training")
-    y_test = _target(test, spec, "test")
+    y_train_all = target_values(train, spec, "training")
+    y_test = target_values(test, spec, "test")
     columns = spec.embed_names
     oof = _check_vectors("vectors_oof", vectors_oof, columns, len(train))
     in_sample = _check_vectors("vectors_in_sample", vectors_in_sample, columns, len(train))
@@ -437,7 +448,7 @@ def compare_downstream(
     if task_kind == "binary" and np.unique(y_train).size < 2:
         raise ValueError("binary target: the training rows hold one class only; nothing to learn")
     y_fit = targets.forward(y_train, transform) if task_kind == "regression" else y_train
-    sets = _feature_sets(
+    sets = feature_sets(
         train,
         test,
         spec,
@@ -452,12 +463,12 @@ def compare_downstream(
             X_train, X_test = sets[feature_set]
             if model_name == "linear":  # float32 is plenty for trees; linear solvers want float64 precision
                 X_train, X_test = X_train.astype(np.float64), X_test.astype(np.float64)
-            model = _model(model_name, task_kind, ev.seed)
+            model = downstream_model(model_name, task_kind, ev.seed)
             with threadpool_limits(limits=OPENMP_THREADS, user_api="openmp"):
                 started = time.perf_counter()
                 model.fit(X_train, y_fit)
                 seconds = time.perf_counter() - started
-                pred = _predict(model, X_test, task_kind, transform)
+                pred = predict_downstream(model, X_test, task_kind, transform)
             predictions[f"{model_name}/{feature_set}"] = pred
             rows.append(
                 {

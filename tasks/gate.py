@@ -53,7 +53,14 @@ from entivec.schemas.vocabulary import category_strings
 from entivec.settings import project_home, tracking_uri
 from entivec.tasks import audit, registry, targets
 from entivec.tasks.compare import ColumnComparison, compare_vector_sets
-from entivec.tasks.evaluate import _feature_sets, _model, _predict, _target, capped_rows, fold_splitter
+from entivec.tasks.evaluate import (
+    capped_rows,
+    downstream_model,
+    feature_sets,
+    fold_splitter,
+    predict_downstream,
+    target_values,
+)
 from entivec.tasks.metrics import PRIMARY, per_row_loss, task_metrics
 
 TRAIN_IDS_ARTIFACT = "data/train_ids.parquet"
@@ -551,22 +558,22 @@ def judge_downstream(
     """Fit the judge model with the baseline features and with each version's vectors; predict ``rows``."""
     policy, task_kind = spec.promotion, spec.target.task
     transform = spec.target.transform if task_kind == "regression" else "none"
-    y = _target(rows, spec, "judged")
+    y = target_values(rows, spec, "judged")
     labels = [BASELINE, *vector_sets, *(ENCODINGS if policy.compare_encodings else ())]
     predictions = {label: np.full(len(rows), np.nan) for label in labels}
 
     def fit_predict(train: pd.DataFrame, test: pd.DataFrame, into: np.ndarray | slice) -> None:
-        y_train = _target(train, spec, "fitting")
+        y_train = target_values(train, spec, "fitting")
         y_fit = targets.forward(y_train, transform) if task_kind == "regression" else y_train
         blocks = {label: (vector_block(vs, train, spec.embed_names), vector_block(vs, test, spec.embed_names))
                   for label, vs in vector_sets.items()}
-        sets = _feature_sets(train, test, spec, y_fit, blocks)  # the same features the train run's evidence uses
+        sets = feature_sets(train, test, spec, y_fit, blocks)  # the same features the train run's evidence uses
         with _threads_for(len(train)):
             for label in labels:
                 X_train, X_test = sets[label]
-                model = _model(policy.judge_model, task_kind, policy.seed)
+                model = downstream_model(policy.judge_model, task_kind, policy.seed)
                 model.fit(X_train, y_fit)
-                predictions[label][into] = _predict(model, X_test, task_kind, transform)
+                predictions[label][into] = predict_downstream(model, X_test, task_kind, transform)
 
     if policy.downstream_fit == "training_rows":
         keep = capped_rows(len(fit_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
