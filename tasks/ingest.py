@@ -59,6 +59,7 @@ from entivec.schemas.tables import (
     required_columns,
 )
 from entivec.schemas.vocabulary import category_strings
+from entivec.settings import project_home
 
 SOURCE_FILE = "_source_file"
 SOURCE_ROW = "_source_row"
@@ -838,10 +839,33 @@ def ingest(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
     return read_source(spec, spec_path)
 
 
+def clean_or_keep_quarantine(
+    raw: pd.DataFrame, spec: Spec, files: list[str] | None, keep_in: str | Path
+) -> CleanResult:
+    """validate_and_clean; when it rejects every row, the quarantine is written under ``keep_in`` first.
+
+    The run stops either way, but the people who must fix the data get the file of rejected rows and their
+    reasons. The InputError raised names the folder it was written to.
+    """
+    try:
+        return validate_and_clean(raw, spec, files)
+    except InputError as error:
+        if error.quarantine is None:
+            raise
+        stamp = pd.Timestamp.now(tz="UTC").strftime("%Y%m%dT%H%M%S%fZ")
+        folder = Path(keep_in) / f"{spec.name}-{stamp}"
+        path = write_quarantine(error.quarantine, folder)
+        raise InputError(
+            f"{error}; the quarantine ({len(error.quarantine)} row(s) with their reasons) is in {path}",
+            quarantine=error.quarantine,
+            ledger=error.ledger,
+        ) from error
+
+
 @task(name="clean", cache_policy=NO_CACHE)
 def clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = None) -> CleanResult:
-    """validate_and_clean as a task."""
-    return validate_and_clean(raw, spec, files)
+    """validate_and_clean as a task; a quarantine of every row is kept under the project folder."""
+    return clean_or_keep_quarantine(raw, spec, files, project_home() / "quarantine")
 
 
 @task(name="split", cache_policy=NO_CACHE)

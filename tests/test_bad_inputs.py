@@ -312,3 +312,20 @@ def test_cli_level_failure(case: Case, tmp_path, request):
     for fragment in case.fragments:
         assert _squash(fragment) in squashed, f"{case.name}: {fragment!r} not in output:\n{output}"
     assert request.getfixturevalue("registered_versions")(MODEL) == 0
+
+
+def test_a_run_that_rejects_every_row_still_writes_its_quarantine(tmp_path, request):
+    # Every row fails (a null depot where nulls are not allowed, or a weight over the range's maximum), so the
+    # run stops; the rejected rows and their reasons must still reach a file someone can open.
+    run_cli = request.getfixturevalue("run_cli")
+    home = request.getfixturevalue("entivec_home")
+    code, output = run_cli(["train", str(all_rows_quarantined(tmp_path))])
+    assert code == 2, output
+    written = sorted((Path(home) / "quarantine").glob(f"{MODEL}-*/quarantine.parquet"))
+    assert len(written) == 1, output
+    assert str(written[0]) in "".join(output.split()), output  # the message names the file (console may wrap)
+    kept = pd.read_parquet(written[0])
+    assert sorted(kept["_source_row"].tolist()) == [1, 2, 3, 4]
+    assert kept.set_index("_source_row").loc[1, "_reasons"] == "null:depot"  # "north" blanked: a null depot
+    assert (written[0].parent / "quarantine.csv").exists()
+    assert request.getfixturevalue("registered_versions")(MODEL) == 0
