@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -140,9 +140,10 @@ def out_of_fold_vectors(
     columns: list[str],
     folds: int,
     seed: int,
-    fit_fold: Callable[[np.ndarray], dict[str, np.ndarray]],
+    fit_fold: Callable[[np.ndarray], dict[str, np.ndarray]] | None = None,
     reference: dict[str, np.ndarray],
     task: str,
+    fit_folds: Callable[[list[np.ndarray]], Sequence[dict[str, np.ndarray]]] | None = None,
 ) -> dict[str, np.ndarray]:
     """Vectors for downstream training rows, each from a network that never saw that row's target.
 
@@ -158,8 +159,14 @@ def out_of_fold_vectors(
     applied to new data: its own target must not reach its own vector. ``sklearn.preprocessing.TargetEncoder``
     does the same with its fallback to the overall mean.
 
+    ``fit_folds`` may replace ``fit_fold``: it gets every fold's training rows at once, in fold order, and
+    returns their matrices in the same order, so the folds can be trained in parallel (``tasks.crossfit``);
+    the assembly is the same either way.
+
     Returns per column an array (n_train, dim), float64.
     """
+    if (fit_fold is None) == (fit_folds is None):
+        raise ValueError("give exactly one of fit_fold and fit_folds")
     ids = _id_matrix(cat_ids, columns)
     n = ids.shape[0]
     y = np.asarray(y).reshape(-1)
@@ -175,9 +182,14 @@ def out_of_fold_vectors(
     out = {c: np.full((n, refs[c].shape[1]), np.nan) for c in columns}
     covered = np.zeros(n, dtype=np.int64)
 
-    splitter = fold_splitter(task, folds, seed)
-    for train_rows, held_rows in splitter.split(np.zeros((n, 1)), y):
-        fold_mats = fit_fold(train_rows)
+    splits = list(fold_splitter(task, folds, seed).split(np.zeros((n, 1)), y))
+    if fit_folds is not None:
+        fitted = list(fit_folds([train_rows for train_rows, _ in splits]))
+        if len(fitted) != len(splits):
+            raise ValueError(f"fit_folds returned {len(fitted)} results for {len(splits)} folds")
+    else:  # one fold at a time: only one fold's network is alive at once
+        fitted = (fit_fold(train_rows) for train_rows, _ in splits)
+    for (train_rows, held_rows), fold_mats in zip(splits, fitted, strict=False):
         for j, col in enumerate(columns):
             if col not in fold_mats:
                 raise ValueError(f"fit_fold returned no vectors for column {col!r}")
