@@ -91,8 +91,10 @@ def load_versions(
 
 
 @task(name="read-gate-spec", cache_policy=NO_CACHE)
-def read_gate_spec(name: str, candidate: registry.LoadedVersion, spec_path: str | None) -> tuple[Spec, str]:
-    return gate.spec_for(name, candidate, spec_path)
+def read_gate_spec(
+    name: str, candidate: registry.LoadedVersion, spec_path: str | None, source: str | None = None
+) -> tuple[Spec, str]:
+    return gate.spec_for(name, candidate, spec_path, source)
 
 
 @task(name="record-gate-evidence", cache_policy=NO_CACHE, retries=2, retry_delay_seconds=2)
@@ -111,10 +113,12 @@ def promote(
     spec_path: str | None = None,
     by: str | None = None,
     force: bool = False,
+    source: str | None = None,
 ) -> PromotionOutcome:
     """Judge a candidate (default: the `staging` version) by the spec's gate and make it `production` if it passes.
 
-    The newest data is read with ``spec_path`` (default: the spec file the candidate was trained from). A
+    The newest data is read with ``spec_path`` (default: the spec file the candidate was trained from), from
+    ``source`` when given (default: the drop the candidate's train run read with ``--source``, if any). A
     failed gate leaves production untouched, is recorded in the history, and ends this flow run Failed
     (its message lists the failed checks); calling the flow then raises :class:`GateRefused`, whose
     ``outcome`` holds the figures. ``force`` promotes despite a failed gate and records that it was forced.
@@ -123,7 +127,7 @@ def promote(
     who = by or operator()
     repair_history(name)
     candidate, production = load_versions(name, version or registry.STAGING)
-    spec, spec_file = read_gate_spec(name, candidate, spec_path)
+    spec, spec_file = read_gate_spec(name, candidate, spec_path, source)
     raw, files = ingest(spec, spec_file)
     fingerprint = data_fingerprint(raw, files)["sha256"]
     cleaned = clean(raw, spec, files)

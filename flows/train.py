@@ -7,14 +7,14 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-from prefect import flow, task
+from prefect import flow, get_run_logger, task
 from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
 from entivec.settings import project_home
-from entivec.tasks import audit, gate, registry, report, targets
+from entivec.tasks import audit, drift, gate, registry, report, targets
 from entivec.tasks.bundle import BundleInputs, write_bundle_task
-from entivec.tasks.crossfit import cross_fit_vectors_task
+from entivec.tasks.crossfit import cross_fit_vectors_submitted
 from entivec.tasks.evaluate import capped_rows, evaluate_downstream, vectors_for_ids
 from entivec.tasks.ingest import clean, ingest, split
 from entivec.tasks.ingest import data_fingerprint as fingerprint_of
@@ -34,6 +34,9 @@ class TrainOutcome:
     rows_quarantined: int
     vectors_help: bool
     summary: str
+    status: str = "trained"  # "trained" | "no-new-data" (the latest version already has this data and spec)
+    note: str = ""  # what an incremental run did: drift verdict, warm start, or why it trained from scratch
+    drift: dict | None = None  # the drift report against production, when one was made
 
 
 @task(name="read-spec")
@@ -46,26 +49,71 @@ def check_ledger(cleaned) -> None:
     cleaned.ledger.check(rows_used=len(cleaned.frame), rows_quarantined=len(cleaned.quarantine))
 
 
-@task(name="earlier-vocabularies", retries=2, retry_delay_seconds=2)
-def earlier_vocabularies(name: str, version_or_alias: str):
-    return registry.load_version(name, version_or_alias).vector_set.vocabularies
+@task(name="earlier-version", retries=2, retry_delay_seconds=2)
+def earlier_version(name: str, version_or_alias: str) -> registry.LoadedVersion:
+    return registry.load_version(name, version_or_alias)
+
+
+def _no_new_data(spec: Spec, same, fingerprint: dict) -> TrainOutcome:
+    """The outcome of a run whose input the latest version was already trained on; recorded, nothing trained."""
+    run_id = drift.record_skip_task(spec, str(same.version), fingerprint["sha256"])
+    tags = same.tags or {}
+    used = int(tags.get("entivec.rows_used", fingerprint["rows"]))
+    summary = (f"no new data: version {same.version} of {spec.name} was trained on this very data with this spec; "
+               f"nothing was trained (recorded in MLflow run {run_id})")
+    return TrainOutcome(spec.name, str(same.version), run_id, fingerprint["rows"], used, fingerprint["rows"] - used,
+                        tags.get("entivec.vectors_help") == "true", summary, status="no-new-data", note=summary)
 
 
 @flow(name="train", validate_parameters=False)
-def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
+def train(
+    spec_path: str,
+    vocabulary_from: str | None = None,
+    source: str | None = None,
+    incremental: bool = False,
+    warm_start: bool = False,
+    skip_unchanged: bool = False,
+) -> TrainOutcome:
     """Train a vector set from the dataset a spec describes, judge it, and register it as `staging`.
 
     ``vocabulary_from`` (a version number or alias of the same registered model) keeps that version's
-    category ids and appends new categories after them.
+    category ids and appends new categories after them. ``source`` reads the data from that file or glob
+    instead of the spec's (a new drop). ``incremental`` reuses production's vocabulary and first checks the
+    data for drift against production's training data, stopping (DriftStop, nothing registered) when the
+    spec's ``drift:`` thresholds are broken; without a production version it trains from scratch and says so.
+    ``warm_start`` starts the embedding tables from the vectors of the version whose vocabulary is reused.
+    ``skip_unchanged`` trains nothing when the latest version has the same data fingerprint and spec hash.
     """
+    if warm_start and not (incremental or vocabulary_from):
+        raise ValueError("warm_start needs a version to start from: incremental=True (production) or vocabulary_from")
     spec, spec_text = read_spec(spec_path)
+    if source is not None:
+        spec = drift.with_source(spec, source)
     raw, files = ingest(spec, spec_path)
     fingerprint = fingerprint_of(raw, files)
+    if skip_unchanged:
+        same = drift.latest_same_input_task(spec.name, fingerprint["sha256"], spec.content_hash())
+        if same is not None:
+            return _no_new_data(spec, same, fingerprint)
     cleaned = clean(raw, spec, files)
     check_ledger(cleaned)
+
+    reference, drift_report, notes = None, None, []
+    if incremental:
+        reference = drift.load_reference_task(spec.name)
+        if reference is None:
+            notes.append(f"incremental: {spec.name} has no production version, so no drift check; trained from scratch")
+            get_run_logger().warning(notes[-1])
+        else:
+            drift_report = drift.compare_task(reference, raw, cleaned.frame, spec, fingerprint["sha256"])
+            drift.publish_in_prefect(drift_report)
+            if not drift_report.passed:  # recorded, then stopped: production and the registry stay untouched
+                raise drift.DriftStop(drift_report, drift.record_stop_task(spec, drift_report, fingerprint["sha256"]))
+            notes.append(f"incremental: drift against production version {reference.version} passed")
     train_rows, test_rows = split(cleaned.frame, spec.split)
 
-    previous = earlier_vocabularies(spec.name, vocabulary_from) if vocabulary_from else None
+    start = earlier_version(spec.name, vocabulary_from) if vocabulary_from else reference
+    previous = start.vector_set.vocabularies if start is not None else None
     vocabularies = build_vocabularies_task(train_rows, spec, previous)
     encoder = FeatureEncoder.fit(train_rows, spec, vocabularies)
     train_inputs, test_inputs = encoder.transform(train_rows), encoder.transform(test_rows)
@@ -73,10 +121,16 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
     y_test = test_rows[spec.target.column].to_numpy(dtype=float)
     cardinalities = [vocabularies[c].size for c in spec.embed_names]
     sizes = [col.resolved_size(vocabularies[col.name].size) for col in spec.columns.embed]
+    init_vectors = None
+    if warm_start and start is not None:  # ids line up: the vocabulary was extended from the same version
+        init_vectors, sizes = drift.warm_start(spec, spec_path, start.vector_set, start.version, sizes)
+        notes.append(f"warm start from the vectors of version {start.version}")
+    elif warm_start:
+        notes.append("no version to warm-start from: embedding tables start at random")
 
     result = train_vectors(
         train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
-        training=spec.training, task=spec.target.task,
+        training=spec.training, task=spec.target.task, init_vectors=init_vectors,
     )
     network_pred = predict(result.model, test_inputs, spec.target.task)
     if spec.target.task == "regression":
@@ -85,7 +139,8 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
 
     rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
     subset = train_inputs.take(rows)
-    oof = cross_fit_vectors_task(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
+    # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
+    oof = cross_fit_vectors_submitted(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
     in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
     on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
@@ -99,14 +154,20 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
         bundle = BundleInputs(
             spec, spec_text, fingerprint, cleaned.ledger, cleaned.quarantine, vocabularies, encoder,
             result, evidence, network_metrics, y_test, network_pred,
+            profile=drift.data_profile_task(raw, train_rows, spec),
         )
         vector_folder = write_bundle_task(bundle, workdir)
+        if drift_report is not None:  # the check it passed travels with the run
+            drift.write_report(drift_report, workdir / drift.REPORT_FOLDER)
         gate.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
         metrics = {f"network_{k}": v for k, v in network_metrics.items()}
         for row in evidence.table.to_dict("records"):
             for key, value in row.items():
                 if key in network_metrics:
                     metrics[f"{row['model']}_{row['features']}_{key}"] = value
+        if drift_report is not None:
+            metrics["drift_max_psi"] = drift_report.largest("psi")
+            metrics["drift_max_new_category_share"] = drift_report.largest("new_category_share")
         run_id = record_run_task(
             spec=spec, bundle=workdir, fingerprint=fingerprint, ledger=cleaned.ledger.to_dict(),
             history=result.history, metrics=metrics, summary=(workdir / "summary.md").read_text(),
@@ -118,6 +179,8 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
             "entivec.primary_metric": evidence.primary_metric,
             "entivec.vectors_help": str(evidence.vectors_help).lower(),
             gate.SPEC_PATH_TAG: str(Path(spec_path).resolve()),
+            **({gate.SOURCE_TAG: spec.source.path} if source is not None else {}),
+            **({"entivec.incremental": "; ".join(notes)} if notes else {}),
             **{f"entivec.network_{k}": f"{v:.6g}" for k, v in network_metrics.items()},
         }
         with transaction():
@@ -125,7 +188,8 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
                 spec=spec, run_id=run_id, vector_set_folder=vector_folder, version_tags=tags
             )
             audit.record_move_task(
-                spec.name, registry.STAGING, version, event="train", reason=f"trained from {spec_path}",
+                spec.name, registry.STAGING, version, event="train",
+                reason=f"trained from {spec_path}" + "".join(f"; {n}" for n in notes),
                 data_fingerprint=fingerprint["sha256"], details={"run_id": run_id, "spec_hash": spec.content_hash()},
             )
     finally:
@@ -135,4 +199,5 @@ def train(spec_path: str, vocabulary_from: str | None = None) -> TrainOutcome:
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,
         cleaned.ledger.rows_quarantined, evidence.vectors_help, (evidence.summary or ""),
+        note="; ".join(notes), drift=drift_report.to_dict() if drift_report is not None else None,
     )

@@ -35,6 +35,7 @@ class BundleInputs:
     network_metrics: dict[str, float]
     test_actual: np.ndarray
     test_predicted: np.ndarray
+    profile: dict | None = None  # what the training rows looked like, for drift checks of later data
 
 
 def summary_text(b: BundleInputs) -> str:
@@ -70,6 +71,8 @@ def write_bundle(b: BundleInputs, folder: Path) -> Path:
     (folder / "data").mkdir(exist_ok=True)
     (folder / "data" / "fingerprint.json").write_text(json.dumps(b.fingerprint, indent=1, default=str))
     (folder / "data" / "ledger.json").write_text(json.dumps(b.ledger.to_dict(), indent=1))
+    if b.profile is not None:
+        (folder / "data" / "profile.json").write_text(json.dumps(b.profile, indent=1, default=str))
     if len(b.quarantine):
         write_quarantine(b.quarantine, folder / "data")
 

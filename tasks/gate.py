@@ -65,6 +65,7 @@ from entivec.tasks.metrics import PRIMARY, per_row_loss, task_metrics
 
 TRAIN_IDS_ARTIFACT = "data/train_ids.parquet"
 SPEC_PATH_TAG = "entivec.spec_path"
+SOURCE_TAG = "entivec.source"  # set when a run read a data drop named apart from its spec (train --source)
 BASELINE = "baseline"
 ENCODINGS = ("onehot", "target_encoding")  # the embedded columns without vectors, for context
 CANDIDATE = "candidate"
@@ -459,12 +460,20 @@ def version_spec(version: registry.LoadedVersion) -> Spec | None:
         return None  # written by an older spec model; treated as unknown
 
 
-def spec_for(name: str, candidate: registry.LoadedVersion, spec_path: str | None) -> tuple[Spec, str]:
-    """The spec to read the newest data with: ``spec_path``, else the one the candidate was trained from."""
+def spec_for(
+    name: str, candidate: registry.LoadedVersion, spec_path: str | None, source: str | None = None
+) -> tuple[Spec, str]:
+    """The spec to read the newest data with: ``spec_path``, else the one the candidate was trained from.
+
+    The data location is ``source`` when given; else, when the spec is the candidate's own and its train run read
+    a drop named apart from the spec (``train --source``), that drop; else the spec's own ``source``.
+    """
+    recorded_source = None
     if spec_path is None:
         c = registry.client()
-        recorded = (c.get_model_version(name, candidate.version).tags.get(SPEC_PATH_TAG)
-                    or c.get_run(candidate.run_id).data.tags.get(SPEC_PATH_TAG))
+        version_tags = c.get_model_version(name, candidate.version).tags
+        recorded = version_tags.get(SPEC_PATH_TAG) or c.get_run(candidate.run_id).data.tags.get(SPEC_PATH_TAG)
+        recorded_source = version_tags.get(SOURCE_TAG)
         if not recorded or not Path(recorded).exists():
             where = f" (recorded: {recorded}, not found)" if recorded else ""
             raise SpecError(
@@ -475,6 +484,8 @@ def spec_for(name: str, candidate: registry.LoadedVersion, spec_path: str | None
     spec = load_spec(spec_path)
     if spec.name != name:
         raise SpecError(f"spec file {spec_path} describes model {spec.name!r}, not {name!r}")
+    if source or recorded_source:
+        spec = spec.with_source(source or recorded_source)
     return spec, str(spec_path)
 
 

@@ -52,6 +52,14 @@ def promote(
     force: Annotated[
         bool, typer.Option("--force", help="Promote even if the gate fails; recorded as forced.")
     ] = False,
+    source: Annotated[
+        str | None,
+        typer.Option(
+            "--source",
+            help="Data file or glob the gate judges on (default: the drop the candidate was trained from with "
+            "`train --source`, else the spec's own source).",
+        ),
+    ] = None,
 ) -> None:
     """Judge a candidate against the baseline and production by the spec's gate; on a pass make it production."""
     from entivec.flows.lifecycle import GateRefused
@@ -62,7 +70,7 @@ def promote(
     def run():
         state = promote_flow(
             name, reason, version=version, spec_path=str(spec) if spec else None, by=by, force=force,
-            return_state=True,
+            source=source, return_state=True,
         )
         result = state.result(raise_on_failure=False)
         if isinstance(result, BaseException) and not isinstance(result, GateRefused):

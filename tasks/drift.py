@@ -1,0 +1,668 @@
+"""Incremental retraining: a profile of each version's training data, drift of a new drop, and skipping known input.
+
+Profile. Every train run stores ``data/profile.json``: the coarse type of every column as read, the spec's role
+of each column, and per feature column what its training rows looked like. Embedded columns point at their
+vocabulary (it already holds the category counts); one-hot columns keep their category counts; numeric columns
+and the target keep fixed quantile bin edges of the training rows, the row count per bin and the missing count.
+
+Drift. A new drop is compared with the data of the production version:
+
+- PSI (population stability index) per column, ``sum((a - e) * ln(a / e))`` over the shares of rows per bin in
+  the drop (a) and in production's training rows (e). Numeric columns use production's own bin edges (plus a
+  bin for missing values). Categorical columns use production's most frequent categories as bins (at most
+  ``drift.category_bins``, the rest of the known ones pooled in one bin, plus missing): with one bin per
+  category a column of thousands would read as drifted from sampling noise alone, because the PSI of two
+  samples of one distribution grows with the number of bins over the number of rows. Rows whose category
+  production never saw are left out of the PSI and measured by the new-category share instead, so one
+  change is not counted twice. A bin empty on one side gets the share ``EPSILON`` (then shares are
+  renormalised), since ln(0) has no value; bins empty on both sides are dropped.
+- New-category share per categorical column: rows whose category is not in production's vocabulary (one-hot
+  columns: not among production's profiled categories), over all rows of the drop.
+- Schema changes against the production version's profile and spec: columns added to or removed from the data,
+  a column's type changed, a column's role in the spec changed.
+
+Versions trained before profiles existed fall back to their vocabulary counts for embedded columns; their
+one-hot and numeric columns are reported as "not profiled", and only column names (from the data
+fingerprint) are compared for the schema.
+
+Outcomes that train nothing (a retrain stopped by drift, a drop already trained on) are recorded as MLflow runs
+of the model's experiment tagged ``entivec.kind`` = ``train-stopped`` or ``train-skipped``; a stopped run
+holds the drift report. They never touch the registry: no version, no alias move.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import tempfile
+from dataclasses import asdict, dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from mlflow.entities.model_registry import ModelVersion
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+
+import entivec
+from entivec.schemas.spec import Spec, SpecError, load_spec
+from entivec.schemas.vector_set import VectorSet
+from entivec.schemas.vocabulary import Vocabulary, category_strings
+from entivec.settings import project_home
+from entivec.tasks import registry
+from entivec.tasks.gate import run_file, version_spec
+from entivec.tasks.ingest import BOOKKEEPING, InputError, data_fingerprint, read_source, validate_and_clean
+from entivec.tasks.track import now_iso, operator
+
+PROFILE_FORMAT = "entivec.data_profile/1"
+PROFILE_ARTIFACT = "data/profile.json"
+FINGERPRINT_ARTIFACT = "data/fingerprint.json"
+REPORT_FOLDER = "drift"
+EPSILON = 1e-4
+STOPPED_KIND = "train-stopped"
+SKIPPED_KIND = "train-skipped"
+MISSING_BIN = "(missing)"
+OTHER_BIN = "(other known categories)"
+# Common practice, no source: how PSI values are usually read.
+PSI_STABLE, PSI_MAJOR = 0.1, 0.25
+PSI_READING = "PSI below 0.1 reads as stable, 0.1-0.25 as a moderate shift, above 0.25 as a major shift " \
+              "(common practice, no source)"
+
+
+# --- the index itself -------------------------------------------------------------------------------------------
+
+
+def psi(expected: Any, actual: Any, epsilon: float = EPSILON) -> float:
+    """Population stability index of two binned distributions: counts or shares over the same bins, same order.
+
+    ``expected`` is the reference (production's training rows), ``actual`` the new data. Bins empty on both sides
+    are dropped; a share of 0 on one side is raised to ``epsilon`` and the shares renormalised.
+    """
+    e = np.asarray(expected, dtype="float64").ravel()
+    a = np.asarray(actual, dtype="float64").ravel()
+    if e.shape != a.shape:
+        raise ValueError(f"psi needs the same bins on both sides, got {e.size} and {a.size}")
+    if (e < 0).any() or (a < 0).any() or not (np.isfinite(e).all() and np.isfinite(a).all()):
+        raise ValueError("psi needs finite, non-negative counts or shares")
+    keep = (e > 0) | (a > 0)
+    e, a = e[keep], a[keep]
+    if e.sum() == 0 or a.sum() == 0:
+        raise ValueError("psi needs at least one row on each side")
+    e, a = np.maximum(e / e.sum(), epsilon), np.maximum(a / a.sum(), epsilon)
+    e, a = e / e.sum(), a / a.sum()
+    return float(np.sum((a - e) * np.log(a / e)))
+
+
+def psi_reading(value: float | None) -> str:
+    if value is None or not math.isfinite(value):
+        return "not profiled"
+    if value < PSI_STABLE:
+        return "stable"
+    return "moderate" if value <= PSI_MAJOR else "major"
+
+
+# --- the profile written at training ----------------------------------------------------------------------------
+
+
+def value_kind(series: pd.Series) -> str:
+    """A column's coarse type as read: number, boolean, datetime or text (int and float are one kind)."""
+    if pd.api.types.is_bool_dtype(series):
+        return "boolean"
+    if pd.api.types.is_numeric_dtype(series):
+        return "number"
+    if pd.api.types.is_datetime64_any_dtype(series):
+        return "datetime"
+    return "text"
+
+
+def column_roles(spec: Spec) -> dict[str, str]:
+    """Each column the spec names, with its role."""
+    roles = {spec.id_column: "id", spec.target.column: "target"}
+    roles |= {c: "embed" for c in spec.embed_names}
+    roles |= {c: "onehot" for c in spec.onehot_names}
+    roles |= {c: "numeric" for c in spec.numeric_names}
+    if spec.split.time_column:
+        roles.setdefault(spec.split.time_column, "time")
+    return roles
+
+
+def _numbers(values: pd.Series) -> np.ndarray:
+    out = pd.to_numeric(values, errors="coerce")
+    return np.asarray(out.to_numpy(dtype="float64", na_value=np.nan), dtype="float64")
+
+
+def numeric_profile(values: pd.Series, bins: int) -> dict[str, Any]:
+    """Quantile bin edges of the values, rows per bin and missing rows; bins are right-closed, ends open."""
+    x = _numbers(values)
+    present = np.isfinite(x)
+    finite = x[present]
+    if len(finite):
+        # Tied quantiles (a value that fills several bins) collapse into one edge.
+        edges = np.unique(np.quantile(finite, np.linspace(0, 1, bins + 1)[1:-1]))
+    else:
+        edges = np.zeros(0)
+    counts = np.bincount(np.searchsorted(edges, finite, side="left"), minlength=len(edges) + 1)
+    return {
+        "kind": "numeric",
+        "rows": int(len(x)),
+        "missing": int((~present).sum()),
+        "edges": [float(v) for v in edges],
+        "counts": [int(v) for v in counts],
+        "min": float(finite.min()) if len(finite) else None,
+        "max": float(finite.max()) if len(finite) else None,
+        "mean": float(finite.mean()) if len(finite) else None,
+    }
+
+
+def category_profile(values: pd.Series) -> dict[str, Any]:
+    strings = category_strings(values)
+    counts = strings.value_counts(dropna=True)
+    return {
+        "kind": "categorical",
+        "rows": int(len(strings)),
+        "missing": int(strings.isna().sum()),
+        "counts": {str(k): int(v) for k, v in counts.items()},
+    }
+
+
+def data_profile(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
+    """The profile of the rows a version trains on (``rows``), with the types of every column as read (``raw``)."""
+    columns: dict[str, dict[str, Any]] = {}
+    for name in spec.embed_names:
+        strings = category_strings(rows[name])
+        columns[name] = {"kind": "categorical", "rows": int(len(strings)), "missing": int(strings.isna().sum()),
+                         "counts_in": "vocabulary"}
+    for name in spec.onehot_names:
+        columns[name] = category_profile(rows[name])
+    for name in [*spec.numeric_names, spec.target.column]:
+        columns[name] = numeric_profile(rows[name], spec.drift.numeric_bins)
+    return {
+        "format": PROFILE_FORMAT,
+        "rows": int(len(rows)),
+        "data_columns": {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING},
+        "roles": column_roles(spec),
+        "columns": columns,
+    }
+
+
+@task(name="profile-data", cache_policy=NO_CACHE)
+def data_profile_task(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
+    return data_profile(raw, rows, spec)
+
+
+# --- what production trained on ---------------------------------------------------------------------------------
+
+
+@dataclass
+class Reference:
+    """The version a drop is compared with, and what is known of the data it trained on."""
+
+    name: str
+    version: str
+    alias: str
+    run_id: str
+    vector_set: VectorSet
+    profile: dict[str, Any] | None
+    spec: Spec | None
+    data_columns: dict[str, str | None]  # column -> kind as read (None when only the name was recorded)
+
+
+def _json_artifact(run_id: str, path: str) -> dict | None:
+    local = run_file(run_id, path)
+    if local is None or not local.is_file():
+        return None
+    return json.loads(local.read_text(encoding="utf-8"))
+
+
+def load_reference(name: str, alias: str = registry.PRODUCTION) -> Reference | None:
+    """The version ``alias`` points at, with its profile; None when the model or the alias does not exist."""
+    try:
+        loaded = registry.load_version(name, alias)
+    except registry.RegistryError:
+        return None
+    profile = _json_artifact(loaded.run_id, PROFILE_ARTIFACT)
+    if profile is not None and profile.get("format") != PROFILE_FORMAT:
+        profile = None
+    if profile is not None:
+        data_columns: dict[str, str | None] = dict(profile["data_columns"])
+    else:
+        fingerprint = _json_artifact(loaded.run_id, FINGERPRINT_ARTIFACT) or {}
+        data_columns = {str(c): None for c in fingerprint.get("columns", [])}
+    return Reference(name, loaded.version, alias, loaded.run_id, loaded.vector_set, profile,
+                     version_spec(loaded), data_columns)
+
+
+@task(name="production-reference", retries=2, retry_delay_seconds=2)
+def load_reference_task(name: str, alias: str = registry.PRODUCTION) -> Reference | None:
+    return load_reference(name, alias)
+
+
+# --- the report -------------------------------------------------------------------------------------------------
+
+
+@dataclass
+class ColumnDrift:
+    column: str
+    role: str
+    kind: str  # categorical | numeric
+    basis: str  # profile | vocabulary | not profiled
+    psi: float | None = None
+    reading: str = "not profiled"
+    bins: int = 0
+    new_category_share: float | None = None
+    new_categories: int = 0
+    new_examples: list[str] = field(default_factory=list)
+    missing_share: float | None = None
+    reference_missing_share: float | None = None
+    ignored: bool = False
+
+
+@dataclass
+class SchemaChange:
+    column: str
+    change: str  # added | removed | type_changed | role_changed
+    before: str
+    after: str
+    affects_model: bool
+
+
+@dataclass
+class DriftReport:
+    name: str
+    against_alias: str
+    against_version: str
+    rows: int
+    reference_rows: int | None
+    data_fingerprint: str
+    thresholds: dict[str, Any]
+    columns: list[ColumnDrift]
+    schema_changes: list[SchemaChange]
+    breaches: list[str]
+    notes: list[str]
+    at: str = field(default_factory=now_iso)
+
+    @property
+    def passed(self) -> bool:
+        return not self.breaches
+
+    def column(self, name: str) -> ColumnDrift:
+        for c in self.columns:
+            if c.column == name:
+                return c
+        raise KeyError(name)
+
+    def largest(self, attribute: str) -> float:
+        values = [getattr(c, attribute) for c in self.columns if getattr(c, attribute) is not None]
+        return float(max(values, default=0.0))
+
+    def to_dict(self) -> dict[str, Any]:
+        out = asdict(self)
+        out["passed"] = self.passed
+        return out
+
+    def markdown(self) -> str:
+        verdict = "passed" if self.passed else f"**stopped** ({len(self.breaches)} reason(s))"
+        lines = [
+            f"# Drift of new {self.name} data against {self.against_alias} (version {self.against_version})",
+            "",
+            f"Verdict: {verdict}. Rows compared: {self.rows} in the new data (model-ready), "
+            f"{self.reference_rows if self.reference_rows is not None else 'unknown'} in the version's training "
+            f"rows. Data fingerprint {self.data_fingerprint[:12]}; checked {self.at}.",
+            "",
+        ]
+        if self.breaches:
+            lines += ["Why it stopped:", *[f"- {b}" for b in self.breaches], ""]
+        lines += ["| column | role | basis | PSI | reading | new-category share | new categories | missing (was) |",
+                  "| --- | --- | --- | --- | --- | --- | --- | --- |"]
+        for c in self.columns:
+            value = "—" if c.psi is None else f"{c.psi:.4f}"
+            share = "—" if c.new_category_share is None else f"{c.new_category_share:.2%}"
+            new = "—" if c.new_category_share is None else str(c.new_categories) + (
+                f" (e.g. {', '.join(c.new_examples[:3])})" if c.new_examples else "")
+            was = "?" if c.reference_missing_share is None else f"{c.reference_missing_share:.1%}"
+            missing = "—" if c.missing_share is None else f"{c.missing_share:.1%} ({was})"
+            label = c.column + (" (ignored)" if c.ignored else "")
+            lines.append(f"| {label} | {c.role} | {c.basis} | {value} | {c.reading} | {share} | {new} | {missing} |")
+        lines += ["", "Schema changes:" if self.schema_changes else "Schema changes: none."]
+        for s in self.schema_changes:
+            used = "used by the model" if s.affects_model else "not used by the model"
+            lines.append(f"- {s.column}: {s.change.replace('_', ' ')} ({s.before} → {s.after}; {used})")
+        t = self.thresholds
+        lines += ["", f"Thresholds (spec `drift:`): max_psi {t['max_psi']}, max_new_category_share "
+                  f"{t['max_new_category_share']}, on_schema_change {t['on_schema_change']}.", ""]
+        lines += [f"- {n}" for n in self.notes]
+        return "\n".join(lines) + "\n"
+
+    def stop_message(self, run_id: str = "") -> str:
+        where = f" Report and reason recorded in MLflow run {run_id}." if run_id else ""
+        return (
+            f"retrain of {self.name!r} stopped by the drift check against {self.against_alias} version "
+            f"{self.against_version}: " + "; ".join(self.breaches) + ". Nothing was registered and "
+            f"{self.against_alias} is unchanged.{where} If the change is expected, adjust the spec's drift: section "
+            "(max_psi, max_new_category_share, on_schema_change: warn, or the column under ignore), or train "
+            "without --incremental."
+        )
+
+
+class DriftStop(InputError):
+    """A new data drop that breaks the spec's drift thresholds; the retrain stops before training."""
+
+    def __init__(self, report: DriftReport, run_id: str = "") -> None:
+        super().__init__(report.stop_message(run_id))
+        self.report = report
+        self.run_id = run_id
+
+
+def _category_bins(
+    known: pd.Series, known_missing: int, drop: pd.Series, max_bins: int
+) -> tuple[np.ndarray, np.ndarray, pd.Series]:
+    """Expected and actual rows per bin for a categorical column, and the drop's rows per new category."""
+    strings = category_strings(drop)
+    observed = strings.value_counts(dropna=True)
+    is_known = observed.index.isin(known.index)
+    new = observed[~is_known].sort_values(ascending=False, kind="stable")
+    actual_known = observed[is_known].reindex(known.index, fill_value=0)
+    order = known.sort_values(ascending=False, kind="stable").index
+    top, rest = order[: max_bins - 1], order[max_bins - 1:]
+    if len(order) <= max_bins:
+        top, rest = order, order[:0]
+    expected = [*known[top].tolist(), int(known[rest].sum()), int(known_missing)]
+    actual = [*actual_known[top].tolist(), int(actual_known[rest].sum()), int(strings.isna().sum())]
+    return np.asarray(expected, dtype="float64"), np.asarray(actual, dtype="float64"), new
+
+
+def _categorical_drift(col: ColumnDrift, known: pd.Series, known_missing: int, known_rows: int,
+                       drop: pd.Series, max_bins: int) -> None:
+    expected, actual, new = _category_bins(known, known_missing, drop, max_bins)
+    col.bins = int(((expected > 0) | (actual > 0)).sum())
+    col.psi = psi(expected, actual) if actual.sum() > 0 else None
+    col.reading = psi_reading(col.psi) if col.psi is not None else "all rows new"
+    col.new_category_share = float(new.sum()) / len(drop) if len(drop) else 0.0
+    col.new_categories = int(len(new))
+    col.new_examples = [str(c) for c in new.index[:5]]
+    col.missing_share = float(actual[-1]) / len(drop) if len(drop) else None
+    col.reference_missing_share = known_missing / known_rows if known_rows else None
+
+
+def _numeric_drift(col: ColumnDrift, profiled: dict[str, Any], drop: pd.Series) -> None:
+    x = _numbers(drop)
+    present = np.isfinite(x)
+    edges = np.asarray(profiled["edges"], dtype="float64")
+    counts = np.bincount(np.searchsorted(edges, x[present], side="left"), minlength=len(edges) + 1)
+    expected = np.asarray([*profiled["counts"], profiled["missing"]], dtype="float64")
+    actual = np.asarray([*counts.tolist(), int((~present).sum())], dtype="float64")
+    col.bins = int(((expected > 0) | (actual > 0)).sum())
+    col.psi = psi(expected, actual)
+    col.reading = psi_reading(col.psi)
+    col.missing_share = float((~present).sum()) / len(x) if len(x) else None
+    col.reference_missing_share = profiled["missing"] / profiled["rows"] if profiled["rows"] else None
+
+
+def _kind_read_as(spec: Spec | None, column: str) -> str:
+    # Category and id columns are always read as text, whatever the file holds.
+    if spec is None:
+        return "inferred"
+    return "text" if column in (spec.id_column, *spec.embed_names, *spec.onehot_names) else "inferred"
+
+
+def schema_changes(reference: Reference, raw: pd.DataFrame, spec: Spec) -> tuple[list[SchemaChange], list[str]]:
+    """Columns added, removed, retyped or given another role, against the reference version."""
+    notes: list[str] = []
+    now = {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING}
+    before = reference.data_columns
+    roles_now = column_roles(spec)
+    roles_before = (column_roles(reference.spec) if reference.spec is not None
+                    else (reference.profile or {}).get("roles"))
+    used = set(roles_now) | set(roles_before or {})
+    changes: list[SchemaChange] = []
+    if before:
+        for c in now:
+            if c not in before:
+                changes.append(SchemaChange(c, "added", "absent", now[c], c in used))
+        for c in before:
+            if c not in now:
+                changes.append(SchemaChange(c, "removed", before[c] or "present", "absent", c in used))
+        typed = [c for c in now if before.get(c) is not None]
+        for c in typed:
+            # A role change that alters how a column is read shows as that role change, not as a new type.
+            same_reading = _kind_read_as(reference.spec, c) == _kind_read_as(spec, c)
+            if before[c] != now[c] and same_reading:
+                changes.append(SchemaChange(c, "type_changed", str(before[c]), now[c], c in used))
+        if not any(v is not None for v in before.values()):
+            notes.append("the version recorded column names only (trained before data profiles), so types were "
+                         "not compared")
+    else:
+        notes.append("the version recorded no columns of its data, so columns were not compared")
+    if roles_before is not None:
+        for c in sorted(set(roles_now) | set(roles_before)):
+            if roles_now.get(c, "unused") != roles_before.get(c, "unused"):
+                changes.append(SchemaChange(c, "role_changed", roles_before.get(c, "unused"),
+                                            roles_now.get(c, "unused"), True))
+    else:
+        notes.append("the version's spec could not be read, so column roles were not compared")
+    return changes, notes
+
+
+def compare(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec,
+            fingerprint_sha: str = "") -> DriftReport:
+    """Drift of a new drop (``raw`` as read, ``rows`` its model-ready rows) against ``reference``."""
+    limits = spec.drift
+    profile = reference.profile or {}
+    profiled = profile.get("columns", {})
+    notes = [PSI_READING + ".",
+             f"Bins empty on one side get a share of {EPSILON:g} before the PSI is taken (ln 0 has no value).",
+             "Rows with a category production never saw are counted in the new-category share, not in the PSI."]
+    columns: list[ColumnDrift] = []
+    roles = column_roles(spec)
+    for name in [*spec.embed_names, *spec.onehot_names]:
+        col = ColumnDrift(name, roles[name], "categorical", "not profiled", ignored=name in limits.ignore)
+        vocab: Vocabulary | None = reference.vector_set.vocabularies.get(name) if name in spec.embed_names else None
+        if vocab is not None:
+            col.basis = "vocabulary"
+            known = pd.Series(vocab.counts[1:], index=pd.Index(vocab.categories[1:], dtype="string"), dtype="int64")
+            known_rows = profiled.get(name, {}).get("rows", int(sum(vocab.counts)))
+            _categorical_drift(col, known, vocab.unknown_count, known_rows, rows[name], limits.category_bins)
+        elif profiled.get(name, {}).get("counts") is not None:
+            col.basis = "profile"
+            entry = profiled[name]
+            known = pd.Series(entry["counts"], dtype="int64")
+            known.index = pd.Index(known.index, dtype="string")
+            _categorical_drift(col, known, entry["missing"], entry["rows"], rows[name], limits.category_bins)
+        columns.append(col)
+    for name in [*spec.numeric_names, spec.target.column]:
+        col = ColumnDrift(name, roles[name], "numeric", "not profiled", ignored=name in limits.ignore)
+        entry = profiled.get(name)
+        if entry is not None and entry.get("kind") == "numeric":
+            col.basis = "profile"
+            _numeric_drift(col, entry, rows[name])
+        columns.append(col)
+    if reference.profile is None:
+        notes.append(f"version {reference.version} was trained before data profiles were kept: embedded columns are "
+                     "compared with its vocabulary counts, other columns are not profiled")
+
+    changes, schema_notes = schema_changes(reference, raw, spec)
+    notes += schema_notes
+    breaches: list[str] = []
+    for c in columns:
+        if c.ignored:
+            continue
+        if c.psi is not None and c.psi > limits.max_psi:
+            breaches.append(f"column {c.column!r}: PSI {c.psi:.3f} > drift.max_psi {limits.max_psi:g} ({c.reading} "
+                            "shift)")
+        if c.new_category_share is not None and c.new_category_share > limits.max_new_category_share:
+            breaches.append(
+                f"column {c.column!r}: {c.new_category_share:.1%} of rows have a category {reference.alias} never "
+                f"saw ({c.new_categories} new, e.g. {', '.join(map(repr, c.new_examples[:3]))}) > "
+                f"drift.max_new_category_share {limits.max_new_category_share:g}"
+            )
+    for s in changes:
+        if not s.affects_model or s.column in limits.ignore:
+            continue
+        text = f"schema: column {s.column!r} {s.change.replace('_', ' ')} ({s.before} → {s.after})"
+        if limits.on_schema_change == "stop":
+            breaches.append(text)
+        else:
+            notes.append(text + " (drift.on_schema_change is warn)")
+    return DriftReport(
+        name=spec.name, against_alias=reference.alias, against_version=reference.version, rows=int(len(rows)),
+        reference_rows=profile.get("rows"), data_fingerprint=fingerprint_sha,
+        thresholds=limits.model_dump(mode="json"), columns=columns, schema_changes=changes, breaches=breaches,
+        notes=notes,
+    )
+
+
+@task(name="check-drift", cache_policy=NO_CACHE)
+def compare_task(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec,
+                 fingerprint_sha: str = "") -> DriftReport:
+    return compare(reference, raw, rows, spec, fingerprint_sha)
+
+
+def write_report(report: DriftReport, folder: Path) -> Path:
+    """``report.json`` and ``report.md`` in ``folder``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "report.json").write_text(json.dumps(report.to_dict(), indent=1, default=str), encoding="utf-8")
+    (folder / "report.md").write_text(report.markdown(), encoding="utf-8")
+    return folder
+
+
+def publish_in_prefect(report: DriftReport) -> None:
+    """The report as a Prefect markdown artifact of the current run (one key per model, so runs line up)."""
+    from entivec.tasks.report import markdown_in_prefect
+
+    markdown_in_prefect(f"{report.name}-drift", report.markdown(),
+                        f"Drift of new {report.name} data against {report.against_alias} version "
+                        f"{report.against_version}: {'passed' if report.passed else 'stopped'}")
+
+
+# --- outcomes that train nothing --------------------------------------------------------------------------------
+
+
+def record_outcome_run(spec: Spec, kind: str, fingerprint_sha: str, note: str, tags: dict[str, str],
+                       report: DriftReport | None = None) -> str:
+    """An MLflow run in the model's experiment that records why nothing was trained; returns its id."""
+    c = registry.client()
+    run = c.create_run(
+        registry.experiment_for(spec.name),
+        run_name=f"{kind} {spec.name} {datetime.now(UTC):%Y-%m-%d %H:%M}",
+        tags={
+            "mlflow.user": operator(),
+            "mlflow.source.name": "entivec train",
+            "mlflow.note.content": note,
+            f"{registry.TAG_PREFIX}kind": kind,
+            f"{registry.TAG_PREFIX}data_fingerprint": fingerprint_sha,
+            f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(),
+            f"{registry.TAG_PREFIX}code_version": entivec.__version__,
+            **{k: v[:4900] for k, v in tags.items()},
+        },
+    )
+    run_id = run.info.run_id
+    try:
+        if report is not None:
+            project_home().mkdir(parents=True, exist_ok=True)
+            with tempfile.TemporaryDirectory(prefix="drift-", dir=project_home()) as scratch:
+                c.log_artifacts(run_id, str(write_report(report, Path(scratch))), REPORT_FOLDER)
+            c.log_metric(run_id, "drift_max_psi", report.largest("psi"))
+            c.log_metric(run_id, "drift_max_new_category_share", report.largest("new_category_share"))
+    except BaseException:
+        c.set_terminated(run_id, status="FAILED")
+        raise
+    c.set_terminated(run_id, status="FINISHED")
+    return run_id
+
+
+@task(name="record-drift-stop", cache_policy=NO_CACHE)
+def record_stop_task(spec: Spec, report: DriftReport, fingerprint_sha: str) -> str:
+    """Record a retrain stopped by drift (no retries: a second record would be a second run)."""
+    return record_outcome_run(
+        spec, STOPPED_KIND, fingerprint_sha, report.stop_message(),
+        {f"{registry.TAG_PREFIX}stop_reason": "; ".join(report.breaches),
+         f"{registry.TAG_PREFIX}against_version": report.against_version},
+        report,
+    )
+
+
+def latest_same_input(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
+    """The latest registered version when it was trained on this very data with this spec, else None."""
+    try:
+        versions = registry.list_versions(name)
+    except registry.RegistryError:
+        return None
+    if not versions:
+        return None
+    tags = versions[0].tags or {}
+    same = (tags.get(f"{registry.TAG_PREFIX}data_fingerprint") == fingerprint_sha
+            and tags.get(f"{registry.TAG_PREFIX}spec_hash") == spec_hash)
+    return versions[0] if same else None
+
+
+@task(name="latest-same-input", retries=2, retry_delay_seconds=2)
+def latest_same_input_task(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
+    return latest_same_input(name, fingerprint_sha, spec_hash)
+
+
+@task(name="record-no-new-data", cache_policy=NO_CACHE)
+def record_skip_task(spec: Spec, version: str, fingerprint_sha: str) -> str:
+    note = (f"no new data: the latest version of {spec.name} (version {version}) was trained on this very data "
+            "(same data fingerprint) with this spec (same spec hash); nothing was trained")
+    return record_outcome_run(spec, SKIPPED_KIND, fingerprint_sha, note,
+                              {f"{registry.TAG_PREFIX}same_as_version": str(version)})
+
+
+# --- starting from production -----------------------------------------------------------------------------------
+
+
+def with_source(spec: Spec, source: str) -> Spec:
+    """The spec reading from ``source`` (a file or glob; a relative one is taken from the working folder)."""
+    return spec.with_source(source)
+
+
+def warm_start(spec: Spec, spec_path: str, start: VectorSet, version: str,
+               sizes: list[int]) -> tuple[dict[str, np.ndarray], list[int]]:
+    """Starting vectors from ``start`` and the table widths that fit them.
+
+    A column sized by a rule keeps the starting version's width (a grown vocabulary could otherwise give a new
+    width); a column with an explicit ``size`` that differs cannot start from those vectors.
+    """
+    widths = []
+    for col, size in zip(spec.columns.embed, sizes, strict=True):
+        if col.name not in start.vectors:
+            widths.append(size)
+            continue
+        width = start.dimension(col.name)
+        if col.size is not None and col.size != width:
+            raise SpecError(
+                f"spec file {spec_path}: key 'columns.embed' sets size {col.size} for {col.name!r}, but version "
+                f"{version} has {width}-d vectors; a warm start needs the same width (set size: {width}, or train "
+                "without --warm-start)"
+            )
+        widths.append(width)
+    vectors = {c: start.vectors[c] for c in spec.embed_names if c in start.vectors}
+    return vectors, widths
+
+
+# --- the `entivec drift` command --------------------------------------------------------------------------------
+
+
+def drift_against(name: str, source: str | None = None, spec_path: str | None = None,
+                  alias: str = registry.PRODUCTION) -> DriftReport:
+    """The drift report of a drop against ``alias`` without training or recording anything."""
+    if source is None and spec_path is None:
+        raise SpecError("name the new data with --source PATH (or a spec whose source is the new data)")
+    registry.resolve(name, alias)  # the registry's own message for a missing model or alias
+    reference = load_reference(name, alias)
+    if spec_path is not None:
+        spec = load_spec(spec_path)
+        if spec.name != name:
+            raise SpecError(f"spec file {spec_path} describes model {spec.name!r}, not {name!r}")
+    elif reference.spec is not None:
+        spec = reference.spec
+        spec_path = str(Path.cwd() / f"{name}-v{reference.version}.spec.yaml")  # only names it in messages
+    else:
+        raise SpecError(f"{name!r} version {reference.version} has no readable spec; pass --spec PATH")
+    if source is not None:
+        spec = with_source(spec, source)
+    raw, files = read_source(spec, spec_path)
+    cleaned = validate_and_clean(raw, spec, files)
+    return compare(reference, raw, cleaned.frame, spec, data_fingerprint(raw, files)["sha256"])
