@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.entivec-installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test lint bench clean stack-up stack-down
 
 $(STAMP): pyproject.toml
 	@command -v $(PYTHON) >/dev/null || { echo "needs $(PYTHON) on PATH (or: make PYTHON=/path/to/python3.11)"; exit 2; }
@@ -26,6 +26,13 @@ lint: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/bench_trainer.py
+
+# The team stack on this machine (PostgreSQL, MLflow server, Prefect server, worker): see infra/README.md.
+stack-up: $(STAMP)
+	infra/stack up
+
+stack-down:
+	infra/stack down
 
 clean:
 	rm -rf $(VENV) .entivec demo-out

@@ -13,6 +13,8 @@ os.environ["PREFECT_HOME"] = str(_SESSION_HOME / "prefect")
 os.environ.pop("PREFECT_API_URL", None)
 os.environ.pop("MLFLOW_TRACKING_URI", None)
 os.environ.pop("MLFLOW_REGISTRY_URI", None)
+os.environ.pop("ENTIVEC_SETTINGS", None)  # a developer's team settings must never point the tests at real servers
+os.environ.pop("ENTIVEC_DASK_ADDRESS", None)
 for key, value in {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
     "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "90",

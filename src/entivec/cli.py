@@ -57,6 +57,14 @@ def _run(call):
         _fail(f"{type(exc).__name__}: {exc}", EXIT_FAILED)
 
 
+DASK_HELP = (
+    "Run the independent networks (cross-fitting folds, sweep candidates) on Dask: 'local' for a temporary "
+    "cluster on this machine, or a scheduler address such as tcp://host:8786. Default: ENTIVEC_DASK_ADDRESS, "
+    "else no Dask."
+)
+WORKERS_HELP = "Worker processes of a --dask local cluster (one thread each)."
+
+
 @app.command()
 def train(
     spec: Annotated[Path, typer.Argument(help="The dataset spec (YAML) to train from.")],
@@ -64,17 +72,102 @@ def train(
         str | None,
         typer.Option(help="Keep the category ids of this version or alias of the same model (e.g. production)."),
     ] = None,
+    source: Annotated[
+        str | None,
+        typer.Option(help="Read the data from this file or glob (a new drop) instead of the spec's source."),
+    ] = None,
+    incremental: Annotated[
+        bool,
+        typer.Option(help="Reuse production's vocabulary and first check the data for drift against production's "
+                     "training data; stop (exit 2, nothing registered) when the spec's drift: thresholds break."),
+    ] = False,
+    warm_start: Annotated[
+        bool,
+        typer.Option(help="Start the embedding tables from the vectors of the version whose vocabulary is reused "
+                     "(needs --incremental or --vocabulary-from)."),
+    ] = False,
+    skip_unchanged: Annotated[
+        bool,
+        typer.Option(help="Train nothing when the latest version has the same data fingerprint and spec; the "
+                     "skip is recorded."),
+    ] = False,
+    dask: Annotated[str | None, typer.Option(help=DASK_HELP)] = None,
+    workers: Annotated[int, typer.Option(min=1, help=WORKERS_HELP)] = 2,
 ) -> None:
     """Validate, clean, train vectors, judge them downstream and register the result as `staging`."""
+    from entivec.flows.parallel import run_flow
     from entivec.flows.train import train as train_flow
 
-    outcome = _run(lambda: train_flow(str(spec), vocabulary_from=vocabulary_from))
+    if warm_start and not (incremental or vocabulary_from):
+        _fail("--warm-start needs a version to start from: add --incremental (production) or --vocabulary-from")
+    outcome = _run(lambda: run_flow(
+        train_flow, dask, workers=workers, spec_path=str(spec), vocabulary_from=vocabulary_from, source=source,
+        incremental=incremental, warm_start=warm_start, skip_unchanged=skip_unchanged,
+    ))
+    if outcome.status == "no-new-data":
+        console.print(f"[bold]no new data[/]: {outcome.summary}", highlight=False)
+        return
+    if outcome.note:
+        console.print(outcome.note, highlight=False)
     console.print(
         f"[bold green]registered[/] {outcome.name} version {outcome.version} as staging "
         f"(run {outcome.run_id})\nrows: {outcome.rows_in} in, {outcome.rows_used} used, "
         f"{outcome.rows_quarantined} quarantined"
     )
     console.print(outcome.summary, highlight=False)
+
+
+@app.command()
+def drift(
+    name: Annotated[str, typer.Argument(help="Registered model name.")],
+    source: Annotated[
+        str | None, typer.Option(help="The new data: a file or glob (default: the spec's source).")
+    ] = None,
+    spec: Annotated[
+        Path | None, typer.Option(help="The spec to read the data with (default: the one production trained with).")
+    ] = None,
+    alias: Annotated[str, typer.Option(help="Compare against this alias or version.")] = "production",
+    out: Annotated[Path | None, typer.Option(help="Also write report.json and report.md into this folder.")] = None,
+) -> None:
+    """Print the drift of new data against production (PSI, new categories, schema); trains and records nothing.
+
+    Exits 2 when the data breaks the spec's drift: thresholds, as `train --incremental` would stop.
+    """
+    from entivec.tasks import drift as drift_checks
+
+    report = _run(lambda: drift_checks.drift_against(name, source, str(spec) if spec else None, alias))
+    console.print(report.markdown(), highlight=False, markup=False)
+    if out is not None:
+        drift_checks.write_report(report, out)
+    if not report.passed:
+        _fail(f"the data would stop an incremental retrain: {'; '.join(report.breaches)}")
+
+
+@app.command()
+def sweep(
+    spec: Annotated[Path, typer.Argument(help="The dataset spec (YAML) to train from.")],
+    candidate: Annotated[
+        list[str] | None,
+        typer.Option("--candidate", "-c", help="A vector size to try (repeat): 'spec', a size rule (fourth_root, "
+                     "half_capped, power_056), a multiplier of the spec's sizes (x0.5, x2) or explicit sizes "
+                     "(col=4,other=8). Default: spec, the three rules, x0.5 and x2."),
+    ] = None,
+    dask: Annotated[str | None, typer.Option(help=DASK_HELP)] = None,
+    workers: Annotated[int, typer.Option(min=1, help=WORKERS_HELP)] = 2,
+) -> None:
+    """Train one spec with several vector sizes and compare them (validation loss, downstream); registers nothing."""
+    from entivec.flows.parallel import run_flow
+    from entivec.flows.sweep import sweep as sweep_flow
+
+    outcome = _run(lambda: run_flow(sweep_flow, dask, workers=workers, spec_path=str(spec), candidates=candidate))
+    table = Table(title=f"vector sizes for {outcome.name}")
+    for header in outcome.table.columns:
+        table.add_column(str(header))
+    for row in outcome.table.itertuples(index=False):
+        table.add_row(*(f"{v:.6g}" if isinstance(v, float) else str(v) for v in row))
+    console.print(table)
+    console.print(outcome.summary, highlight=False)
+    console.print(f"logged as MLflow run {outcome.run_id} (one nested run per candidate); nothing registered")
 
 
 @app.command()
@@ -172,7 +265,7 @@ def _register_command_groups() -> None:
     """Commands that live beside the flows they drive register themselves here."""
     import importlib
 
-    for module in ("entivec.cli_lifecycle", "entivec.cli_apply"):
+    for module in ("entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule"):
         importlib.import_module(module).register(app)
 
 

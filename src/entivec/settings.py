@@ -1,11 +1,30 @@
-"""Where entivec keeps its state, and the environment defaults for the embedded Prefect and MLflow."""
+"""Where entivec keeps its state, the team settings file, and the environment defaults for Prefect and MLflow."""
 
 from __future__ import annotations
 
+import difflib
 import os
 from pathlib import Path
 
 HOME_VARIABLE = "ENTIVEC_HOME"
+SETTINGS_VARIABLE = "ENTIVEC_SETTINGS"
+SETTINGS_FILE_NAME = "settings.env"
+# What a settings file may set: where the shared servers are, and how to reach them.
+SETTINGS_KEYS = (
+    "ENTIVEC_HOME",
+    "MLFLOW_TRACKING_URI",
+    "MLFLOW_TRACKING_USERNAME",
+    "MLFLOW_TRACKING_PASSWORD",
+    "MLFLOW_TRACKING_TOKEN",
+    "MLFLOW_TRACKING_SERVER_CERT_PATH",
+    "PREFECT_API_URL",
+    "PREFECT_API_KEY",
+    "ENTIVEC_LIFECYCLE_LOCK",
+)
+
+
+class SettingsError(ValueError):
+    """A settings file that cannot be used; the message names the file, the line and the key."""
 
 
 def project_home() -> Path:
@@ -29,8 +48,51 @@ def artifact_root() -> str:
     return (project_home() / "artifacts").as_uri()
 
 
+def settings_file() -> Path | None:
+    """The team settings file: ``ENTIVEC_SETTINGS`` when set (it must exist), else ``settings.env`` in the
+    project folder when there is one, else None (the embedded defaults)."""
+    named = os.environ.get(SETTINGS_VARIABLE)
+    if named:
+        path = Path(named).expanduser()
+        if not path.is_file():
+            raise SettingsError(f"{SETTINGS_VARIABLE}={named}: no such file")
+        return path
+    default = project_home() / SETTINGS_FILE_NAME
+    return default if default.is_file() else None
+
+
+def read_settings(path: Path) -> dict[str, str]:
+    """``KEY=VALUE`` lines (``export`` allowed, ``#`` comments, optional quotes); unknown keys are errors."""
+    values: dict[str, str] = {}
+    for number, raw in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1):
+        line = raw.strip()
+        if not line or line.startswith("#"):
+            continue
+        key, sep, value = line.partition("=")
+        key = key.strip().removeprefix("export ").strip()
+        if not sep or key not in SETTINGS_KEYS:
+            close = difflib.get_close_matches(key, SETTINGS_KEYS, n=1)
+            hint = f" (did you mean {close[0]}?)" if close else ""
+            raise SettingsError(
+                f"{path}, line {number}: {key!r} is not a setting{hint}; expected one of {', '.join(SETTINGS_KEYS)}"
+            )
+        values[key] = value.strip().strip("'\"")
+    return values
+
+
+def load_settings() -> Path | None:
+    """Put the settings file's values into the environment where a variable is not already set (it wins)."""
+    path = settings_file()
+    if path is not None:
+        for key, value in read_settings(path).items():
+            if value:
+                os.environ.setdefault(key, value)
+    return path
+
+
 def apply_environment_defaults() -> None:
-    """Set (never override) the variables that keep the embedded services local, quiet and private."""
+    """Load the team settings file, then set (never override) what keeps the embedded services local and quiet."""
+    load_settings()
     home = project_home()
     defaults = {
         "PREFECT_HOME": str(home / "prefect"),
