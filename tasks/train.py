@@ -4,15 +4,17 @@ The network is the classic entity-embedding regressor/classifier: each embedded 
 its own table, the looked-up vectors are concatenated with the standardized numerics and the one-hot
 columns, and dense ReLU layers map that to one output. After training, the tables are the vectors.
 
-Speed comes from the loop's shape:
+Speed comes from the loop's shape (each point measured on the benchmark table, benchmarks/bench_trainer.py):
 
-- one ``torch.randperm`` per epoch permutes whole tensors once; every batch is then a contiguous slice;
-- the embedding lookup is done outside autograd and the looked-up rows are the autograd leaves, so the
-  backward pass never builds a table-sized gradient; each table is then updated with Adam on the rows that
-  occurred in the batch only ("lazy" Adam: a row's moments decay only when the row is used — the same rule
-  as ``torch.optim.SparseAdam``), which makes a step cost the batch, not the table;
-- the dense layers keep their weights and gradients in one flat buffer each, so their Adam step is one call
-  of torch's fused Adam kernel instead of a Python loop over parameters;
+- one ``torch.randperm`` per epoch permutes whole tensors once, into buffers reused from epoch to epoch; every
+  batch is then a contiguous slice;
+- no autograd: the dense layers' forward and backward passes are written out as matrix products into buffers
+  allocated once, and the weight gradients land directly in one flat buffer, so the dense layers' Adam step
+  is one call of torch's fused Adam kernel;
+- the embedding lookup gives the gradient of each looked-up vector, never a table-sized gradient; each table is
+  then updated with Adam on the rows that occurred in the batch only ("lazy" Adam: a row's moments decay only
+  when the row is used — the same rule as ``torch.optim.SparseAdam``), which makes a step cost the batch, not
+  the table;
 - validation runs without gradients in large slices.
 
 Determinism: with the same seed, data and thread count, two runs give bit-identical vectors. The global torch
@@ -42,7 +44,6 @@ import torch
 import torch.nn.functional as F
 from prefect import task
 from prefect.cache_policies import NONE as NO_CACHE
-from torch.optim.adam import adam as adam_functional
 
 from entivec.schemas.spec import Spec, TrainingSpec
 from entivec.schemas.vocabulary import Vocabulary, category_strings
@@ -297,26 +298,25 @@ def _adam_step(
 ) -> None:
     """One Adam step in place with torch's own fused kernel (the one behind ``torch.optim.Adam(fused=True)``).
 
-    ``step`` is a float tensor holding the number of steps taken so far; the kernel increments it.
-    Weight decay is the L2 penalty of torch.optim.Adam (added to the gradient), not AdamW's decoupled decay.
+    ``step`` is a float tensor holding the number of steps taken so far; it is incremented here, as
+    ``torch.optim.Adam`` does before calling the kernel. Weight decay is the L2 penalty of torch.optim.Adam
+    (added to the gradient), not AdamW's decoupled decay. The kernel is called directly: the functional
+    wrapper's argument handling cost more than the update itself for the small tensors of a batch.
     """
-    adam_functional(
+    step.add_(1)
+    torch._fused_adam_(
         [params],
         [grads],
         [m],
         [v],
         [],
         [step],
-        foreach=False,
-        fused=True,
-        capturable=False,
-        differentiable=False,
-        amsgrad=False,
+        lr=lr,
         beta1=ADAM_BETAS[0],
         beta2=ADAM_BETAS[1],
-        lr=lr,
         weight_decay=wd,
         eps=ADAM_EPS,
+        amsgrad=False,
         maximize=False,
     )
 
@@ -333,7 +333,6 @@ class _FlatAdam:
             n = p.numel()
             self.flat[start : start + n].copy_(p.detach().reshape(-1))
             p.data = self.flat[start : start + n].view_as(p)
-            # Autograd adds into an existing .grad in place, so the gradients land in the flat buffer.
             p.grad = self.grad[start : start + n].view_as(p)
             start += n
         self.params = params
@@ -341,9 +340,6 @@ class _FlatAdam:
         self.v = torch.zeros(total)
         self.steps = torch.zeros((), dtype=torch.float32)
         self.lr, self.wd = lr, weight_decay
-
-    def zero_grad(self) -> None:
-        self.grad.zero_()
 
     def step(self) -> None:
         _adam_step(self.flat, self.grad, self.m, self.v, self.steps, self.lr, self.wd)
@@ -368,11 +364,21 @@ class _RowAdam:
         self.v = torch.zeros_like(table)
         self.steps = torch.zeros((), dtype=torch.float32)
         self.lr, self.wd = lr, weight_decay
+        # Position of each used row in the batch's list of used rows (only the used entries are ever read).
+        self.slot = torch.zeros(len(table), dtype=torch.int64)
+        self.positions = torch.arange(len(table))
 
     def step(self, ids: torch.Tensor, grad: torch.Tensor) -> None:
-        rows, inverse = torch.unique(ids, return_inverse=True)
-        # Sum the gradients of repeated ids (index_put_ with accumulate: the fastest CPU way, measured).
-        summed = grad.new_zeros((len(rows), grad.shape[1])).index_put_((inverse,), grad, accumulate=True)
+        # The used rows, sorted: numpy's sort of a few thousand ids took a tenth of torch.unique's time
+        # (measured at 4,096 ids), and its cost does not grow with the table as a bincount's would.
+        ordered = np.sort(ids.numpy())
+        first = np.empty(len(ordered), dtype=bool)
+        first[:1] = True
+        np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
+        rows = torch.from_numpy(ordered[first])
+        # Sum the gradients of repeated ids into one row each.
+        self.slot.index_copy_(0, rows, self.positions[: len(rows)])
+        summed = grad.new_zeros((len(rows), grad.shape[1])).index_add_(0, self.slot.index_select(0, ids), grad)
         param, m, v = (t.index_select(0, rows) for t in (self.table, self.m, self.v))
         _adam_step(param, summed, m, v, self.steps, self.lr, self.wd)
         for target, values in ((self.table, param), (self.m, m), (self.v, v)):
@@ -423,15 +429,21 @@ def _torch_state(threads: int, seed: int) -> Iterator[None]:
     previous_threads = torch.get_num_threads()
     previous_deterministic = torch.are_deterministic_algorithms_enabled()
     previous_warn = torch.is_deterministic_algorithms_warn_only_enabled()
+    previous_fill = torch.utils.deterministic.fill_uninitialized_memory
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(seed)
         torch.set_num_threads(threads)
         torch.use_deterministic_algorithms(True, warn_only=True)
+        # Deterministic mode also fills every new tensor with NaN (a debugging aid against reads of
+        # uninitialized memory); the loop allocates small tensors every batch and reads none unwritten, and the
+        # fills were a tenth of the batch time (measured), so they are turned off.
+        torch.utils.deterministic.fill_uninitialized_memory = False
         try:
             yield
         finally:
             torch.set_num_threads(previous_threads)
             torch.use_deterministic_algorithms(previous_deterministic, warn_only=previous_warn)
+            torch.utils.deterministic.fill_uninitialized_memory = previous_fill
 
 
 def _loss(raw: torch.Tensor, target: torch.Tensor, task: str) -> torch.Tensor:
@@ -460,12 +472,20 @@ class _Tensors:
     def __len__(self) -> int:
         return len(self.y)
 
-    def permuted(self, order: torch.Tensor) -> _Tensors:
-        out = object.__new__(_Tensors)
-        out.ids = self.ids.index_select(1, order)
-        out.dense = self.dense.index_select(0, order)
-        out.y = self.y.index_select(0, order)
-        return out
+    def permuted(self, order: torch.Tensor, into: _Tensors | None = None) -> _Tensors:
+        """The rows in ``order``, written into ``into`` when given (reusing its memory) or into new tensors.
+
+        Reusing the memory matters: gathering a million rows into fresh tensors took twice as long as into
+        tensors already mapped (measured; the difference is the page faults of the new allocation).
+        """
+        if into is None:
+            into = object.__new__(_Tensors)
+            into.ids, into.dense, into.y = (torch.empty_like(t) for t in (self.ids, self.dense, self.y))
+        for j in range(len(self.ids)):  # one id row at a time: faster than index_select along dim 1 (measured)
+            torch.index_select(self.ids[j], 0, order, out=into.ids[j])
+        torch.index_select(self.dense, 0, order, out=into.dense)
+        torch.index_select(self.y, 0, order, out=into.y)
+        return into
 
 
 def _check_inputs(inputs: EncodedInputs, y: np.ndarray, cardinalities: list[int], what: str) -> None:
@@ -602,14 +622,79 @@ def _warm_start(weight: torch.Tensor, matrix: np.ndarray, column: str) -> None:
     weight[:rows] = torch.from_numpy(np.ascontiguousarray(matrix[:rows], dtype=np.float32))
 
 
+class _Passes:
+    """Forward and backward of the dense layers by hand, on buffers allocated once per training run.
+
+    Autograd would build a graph, allocate every activation and gradient anew and zero the gradients each
+    batch; here each matrix product writes into its buffer (``out=``) and the weight gradients land straight
+    in the flat buffer of the dense optimizer.
+    """
+
+    def __init__(self, model: EntityNet, batch: int, embedded: int, width: int) -> None:
+        self.linears = [*model.layers, model.output]
+        self.dropout = model.dropout
+        self.embedded = embedded
+        self.x = torch.empty((batch, width))
+        self.acts = [torch.empty((batch, layer.out_features)) for layer in self.linears]
+        self.grads = [torch.empty((batch, layer.out_features)) for layer in self.linears]
+        self.keep = [torch.empty((batch, layer.out_features)) for layer in model.layers] if self.dropout > 0 else []
+        self.emb_grad = torch.empty((batch, embedded))
+
+    def forward(self, n: int) -> torch.Tensor:
+        """The raw output of the first n rows of ``self.x``, shape (n, 1)."""
+        h = self.x[:n]
+        last = len(self.linears) - 1
+        for i, layer in enumerate(self.linears):
+            out = torch.addmm(layer.bias, h, layer.weight.t(), out=self.acts[i][:n])
+            if i < last:
+                out.relu_()
+                if self.keep:
+                    keep = self.keep[i][:n].bernoulli_(1.0 - self.dropout).div_(1.0 - self.dropout)
+                    out.mul_(keep)
+            h = out
+        return h
+
+    def backward(self, n: int, grad_out: torch.Tensor) -> torch.Tensor:
+        """Weight and bias gradients into the layers' ``.grad``; returns the gradient of the looked-up vectors."""
+        g = grad_out
+        for i in range(len(self.linears) - 1, -1, -1):
+            layer = self.linears[i]
+            below = self.acts[i - 1][:n] if i > 0 else self.x[:n]
+            torch.mm(g.t(), below, out=layer.weight.grad)
+            torch.sum(g, 0, out=layer.bias.grad)
+            if i > 0:
+                g_below = torch.mm(g, layer.weight, out=self.grads[i - 1][:n])
+                if self.keep:
+                    g_below.mul_(self.keep[i - 1][:n])
+                # ReLU's derivative: the gradient passes where the layer's output is positive.
+                torch.ops.aten.threshold_backward.grad_input(g_below, below, 0, grad_input=g_below)
+                g = g_below
+        if self.embedded:
+            return torch.mm(g, self.linears[0].weight[:, : self.embedded], out=self.emb_grad[:n])
+        return self.emb_grad[:n]
+
+
+def _loss_and_grad(raw: torch.Tensor, target: torch.Tensor, task: str, grad: torch.Tensor) -> torch.Tensor:
+    """Summed loss of the rows (a 0-d tensor) and, into ``grad``, the gradient of the mean loss w.r.t. ``raw``."""
+    n = len(raw)
+    target = target.unsqueeze(1)
+    if task == "binary":
+        total = F.binary_cross_entropy_with_logits(raw, target, reduction="sum")
+        torch.sigmoid(raw, out=grad).sub_(target).mul_(1.0 / n)
+        return total
+    torch.sub(raw, target, out=grad)
+    flat = grad.view(-1)
+    total = torch.dot(flat, flat)
+    grad.mul_(2.0 / n)
+    return total
+
+
 def _train_loop(
     model: EntityNet, train: _Tensors, valid: _Tensors, training: TrainingSpec, task: str, label: str
 ) -> tuple[list[dict], int, float]:
     n = len(train)
     batch = min(training.batch_size, n)
     tables = [table.weight for table in model.embeddings]
-    for weight in tables:
-        weight.requires_grad_(False)  # updated by _RowAdam, outside autograd
     dense_params = [p for name, p in model.named_parameters() if not name.startswith("embeddings.")]
     dense_opt = _FlatAdam(dense_params, training.learning_rate, training.weight_decay)
     row_opts = [_RowAdam(w, training.learning_rate, training.weight_decay) for w in tables]
@@ -622,31 +707,33 @@ def _train_loop(
     batches_per_epoch = math.ceil(n / batch)
     embedded = offsets[-1]
     width = embedded + train.dense.shape[1]
+    passes = _Passes(model, batch, embedded, width)
+    grad_out = torch.empty((batch, 1))
+    data = None
     try:
-        with _progress(interactive) as bar:
+        with _progress(interactive) as bar, torch.no_grad():
             bar_task = bar.add_task(label, total=training.epochs * batches_per_epoch, status="")
             for epoch in range(1, training.epochs + 1):
                 tick = time.perf_counter()
                 model.train()
-                data = train.permuted(torch.randperm(n, generator=shuffler))
+                data = train.permuted(torch.randperm(n, generator=shuffler), into=data)
                 total = torch.zeros(())
                 for b in range(batches_per_epoch):
                     start, stop = b * batch, min((b + 1) * batch, n)
+                    rows = stop - start
                     ids = data.ids[:, start:stop]
-                    # The network's input row: looked-up vectors, then the dense columns. It is the autograd
-                    # leaf, so backward ends with the gradient of each looked-up vector (no table-sized tensor).
-                    x = torch.empty((stop - start, width))
+                    # The network's input row: looked-up vectors, then the dense columns. Gathering straight into
+                    # the columns of x beat gathering into separate buffers and concatenating (measured).
+                    x = passes.x[:rows]
                     for j, weight in enumerate(tables):
                         torch.index_select(weight, 0, ids[j], out=x[:, offsets[j] : offsets[j + 1]])
                     x[:, embedded:] = data.dense[start:stop]
-                    x.requires_grad_(bool(tables))
-                    loss = _loss(model.head(x), data.y[start:stop], task)
-                    dense_opt.zero_grad()
-                    loss.backward()
+                    raw = passes.forward(rows)
+                    total += _loss_and_grad(raw, data.y[start:stop], task, grad_out[:rows])
+                    emb_grad = passes.backward(rows, grad_out[:rows])
                     dense_opt.step()
                     for j, opt in enumerate(row_opts):
-                        opt.step(ids[j], x.grad[:, offsets[j] : offsets[j + 1]])
-                    total += loss.detach() * (stop - start)
+                        opt.step(ids[j], emb_grad[:, offsets[j] : offsets[j + 1]])
                     if b % _PROGRESS_EVERY == _PROGRESS_EVERY - 1:
                         bar.advance(bar_task, _PROGRESS_EVERY)
                 train_loss = float(total) / n
@@ -680,8 +767,6 @@ def _train_loop(
                     break
     finally:
         dense_opt.release()
-        for weight in tables:
-            weight.requires_grad_(True)
     if best_state is not None:
         model.load_state_dict(best_state)
     return history, best_epoch, best_loss

@@ -17,6 +17,9 @@ from entivec.tasks.train import (
     EntityNet,
     FeatureEncoder,
     _adam_step,
+    _loss,
+    _loss_and_grad,
+    _Passes,
     _RowAdam,
     count_parameters,
     fit_network,
@@ -135,6 +138,45 @@ def test_row_adam_matches_torch_sparse_adam():
     assert torch.equal(ours.table[untouched], table[untouched])
 
 
+@pytest.mark.parametrize("task", ["regression", "binary"])
+def test_hand_written_passes_match_autograd(task):
+    # Reference: torch.autograd through the same network's own head and loss (F.mse_loss or
+    # F.binary_cross_entropy_with_logits, mean over rows). The trainer's hand-written backward pass must give the
+    # same loss, the same weight and bias gradients and the same gradient of the looked-up vectors.
+    torch.manual_seed(2)
+    net = EntityNet([7, 11], [2, 3], n_dense=4, hidden=[6, 5])
+    params = [p for name, p in net.named_parameters() if not name.startswith("embeddings.")]
+    n, embedded, width = 9, 5, 9
+    x = torch.randn(n, width)
+    target = torch.randn(n) if task == "regression" else (torch.rand(n) < 0.5).float()
+
+    leaf = x.clone().requires_grad_()
+    loss = _loss(net.head(leaf), target, task)
+    expected = torch.autograd.grad(loss, [leaf, *params])
+
+    for p in params:
+        p.grad = torch.full_like(p, float("nan"))  # every gradient must be overwritten, not added to
+    passes = _Passes(net, batch=16, embedded=embedded, width=width)  # a buffer larger than the rows, as at epoch end
+    passes.x[:n] = x
+    grad_out = torch.empty(16, 1)
+    with torch.no_grad():
+        total = _loss_and_grad(passes.forward(n), target, task, grad_out[:n])
+        looked_up_grad = passes.backward(n, grad_out[:n])
+    torch.testing.assert_close(total / n, loss.detach(), rtol=1e-5, atol=1e-7)
+    torch.testing.assert_close(looked_up_grad, expected[0][:, :embedded], rtol=1e-5, atol=1e-7)
+    for p, reference in zip(params, expected[1:], strict=True):
+        torch.testing.assert_close(p.grad, reference, rtol=1e-5, atol=1e-7)
+
+
+def test_dropout_trains_and_stays_deterministic():
+    inputs, y, _ = _regression_rows(n=2000)
+    first, second = _fit(inputs, y, seed=5, dropout=0.2), _fit(inputs, y, seed=5, dropout=0.2)
+    for column in ("shop", "item"):
+        assert np.array_equal(first.vectors[column], second.vectors[column])
+    losses = [h["valid_loss"] for h in first.history]
+    assert losses[-1] < 0.5 * losses[0]  # it still learns with units dropped
+
+
 # --- training behaviour ------------------------------------------------------------------------------------------
 
 
@@ -154,9 +196,13 @@ def test_training_leaves_the_callers_torch_state_alone():
     expected = torch.rand(3)
     torch.manual_seed(123)
     threads = torch.get_num_threads()
+    deterministic = torch.are_deterministic_algorithms_enabled()
+    fill = torch.utils.deterministic.fill_uninitialized_memory
     _fit(inputs, y, epochs=1, threads=1 if threads != 1 else 2)
     assert torch.get_num_threads() == threads
     assert torch.equal(torch.rand(3), expected)
+    assert torch.are_deterministic_algorithms_enabled() == deterministic
+    assert torch.utils.deterministic.fill_uninitialized_memory == fill
 
 
 def test_learns_the_structure_and_reports_loss_on_the_target_scale():
