@@ -9,7 +9,8 @@ What is printed, all measured in this one run on this machine:
   (b) the wall time of the same step on a ``LocalCluster`` (``flows.parallel.local_cluster``: N worker
       processes, one thread each) through Prefect's ``DaskTaskRunner``: ``cross_fit_vectors_submitted`` timed
       inside the flow body, so the cluster's start-up (with each worker importing torch and entivec once, as a
-      long-lived cluster would have done already) and the flow run's start-up are printed separately;
+      long-lived cluster would have done already, and one small warm-up fold per worker inside the flow) and
+      the flow run's start-up are printed separately;
   (c) the ratio sequential / parallel, and whether the out-of-fold vectors are bit-identical (they must be).
 
 With 2 workers the ideal ratio is 2 less the cost of shipping each fold's rows to a worker; on a machine whose
@@ -36,7 +37,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_trainer import CARDINALITIES, cpu_pressure, make_table  # noqa: E402
 
 from entivec.schemas.spec import spec_from_dict  # noqa: E402
-from entivec.tasks.crossfit import cross_fit_vectors, cross_fit_vectors_submitted  # noqa: E402
+from entivec.tasks.crossfit import cross_fit_vectors, cross_fit_vectors_submitted, submit_folds  # noqa: E402
 from entivec.tasks.train import EncodedInputs, fit_network  # noqa: E402
 
 COLUMNS = [f"c{j}" for j in range(len(CARDINALITIES))]
@@ -57,13 +58,22 @@ def bench_spec(folds: int, epochs: int) -> dict:
 
 
 @flow(name="bench-crossfit", validate_parameters=False)
-def crossfit_flow(folder: str) -> tuple[dict[str, np.ndarray], float]:
+def crossfit_flow(folder: str, warm_tasks: int = 0) -> tuple[dict[str, np.ndarray], float]:
     """Read the case from ``folder`` (only a path travels, never the arrays), time the submitted cross-fitting."""
     data = np.load(Path(folder) / "case.npz")
     meta = json.loads((Path(folder) / "case.json").read_text())
     spec = spec_from_dict(meta)
     inputs = EncodedInputs(data["cat_ids"], data["dense"])
     reference = {c: data[f"ref_{c}"] for c in COLUMNS}
+    if warm_tasks:
+        # One small fold task per worker first: a long-lived cluster's workers have already made their Prefect
+        # client and run torch once (the first network a fresh process trains costs about a second more).
+        small = np.arange(min(2_000, len(data["y"])))
+        quick = spec.training.model_copy(update={"epochs": 1, "patience": 1})
+        futures = submit_folds(inputs, data["y"], [small] * warm_tasks, columns=COLUMNS,
+                               cardinalities=[c + 1 for c in CARDINALITIES], sizes=SIZES, training=quick,
+                               task="regression")
+        [f.result() for f in futures]
     started = time.perf_counter()
     oof = cross_fit_vectors_submitted(inputs, data["y"], spec, [c + 1 for c in CARDINALITIES], SIZES, reference)
     return oof, time.perf_counter() - started
@@ -119,7 +129,7 @@ def main(argv: list[str] | None = None) -> int:
             runner = task_runner(cluster.scheduler_address)
             with prefect_api_for_workers(runner):
                 flow_started = time.perf_counter()
-                oof_par, par = crossfit_flow.with_options(task_runner=runner)(folder)
+                oof_par, par = crossfit_flow.with_options(task_runner=runner)(folder, args.workers)
                 flow_wall = time.perf_counter() - flow_started
         pressure_par = cpu_pressure()
     print(f"  Dask, {args.workers} workers        {par:8.2f} s   [CPU pressure {pressure_par}]  "
