@@ -12,6 +12,7 @@ from typing import Any
 
 import mlflow
 import mlflow.pyfunc
+import pandas as pd
 import yaml
 from mlflow.entities import Metric, Param
 from prefect import task
@@ -179,3 +180,38 @@ def write_spec_copy(spec: Spec, source_text: str | None, folder: Path) -> None:
 def copy_into(src: Path, dst: Path) -> None:
     dst.parent.mkdir(parents=True, exist_ok=True)
     shutil.copy2(src, dst)
+
+
+RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "data_fingerprint", "user", "run_id", "note"]
+
+
+def run_log(name: str, limit: int = 50) -> pd.DataFrame:
+    """The runs of a model's experiment, newest first: trains, skips ("no new data"), drift stops, gates, sweeps.
+
+    ``version`` is the registered version a train run became, if any. ``note`` is the first line of the run's
+    note (its summary, or the reason nothing was trained). Versions tell what was made; this tells what was
+    attempted, which is where a scheduled run that trained nothing leaves its trace.
+    """
+    c = registry.client()
+    registry.check_name(name)
+    experiment = c.get_experiment_by_name(f"entivec/{name}")
+    if experiment is None:
+        registry.list_versions(name)  # no runs and no model: an error that names the known models
+        return pd.DataFrame(columns=RUN_LOG_COLUMNS)
+    by_run = {v.run_id: str(v.version) for v in c.search_model_versions(f"name = '{name}'")}
+    runs = c.search_runs([experiment.experiment_id], order_by=["attributes.start_time DESC"], max_results=limit)
+    rows = []
+    for run in runs:
+        tags = run.data.tags
+        note = tags.get("mlflow.note.content") or tags.get(f"{registry.TAG_PREFIX}reason", "")
+        rows.append({
+            "started": datetime.fromtimestamp(run.info.start_time / 1000, UTC).isoformat(timespec="seconds"),
+            "kind": tags.get(f"{registry.TAG_PREFIX}kind", ""),
+            "status": run.info.status,
+            "version": by_run.get(run.info.run_id, ""),
+            "data_fingerprint": tags.get(f"{registry.TAG_PREFIX}data_fingerprint", "")[:12],
+            "user": tags.get("mlflow.user", ""),
+            "run_id": run.info.run_id,
+            "note": next((line.strip() for line in note.splitlines() if line.strip()), ""),
+        })
+    return pd.DataFrame(rows, columns=RUN_LOG_COLUMNS)

@@ -57,7 +57,9 @@ def runs_of_kind(kind: str) -> list:
     return registry.client().search_runs([experiment.experiment_id], filter_string=f"tags.`entivec.kind` = '{kind}'")
 
 
-def test_unchanged_input_is_recorded_not_trained(tmp_path, entivec_home, prefect_server, drops, registered_versions):
+def test_unchanged_input_is_recorded_not_trained(
+    tmp_path, entivec_home, prefect_server, run_cli, drops, registered_versions
+):
     from entivec.flows.train import train
     from entivec.tasks import registry
 
@@ -87,6 +89,20 @@ def test_unchanged_input_is_recorded_not_trained(tmp_path, entivec_home, prefect
     assert skipped[0].data.tags["entivec.same_as_version"] == "1"
     assert skipped[0].data.tags["entivec.data_fingerprint"] == registry.resolve(NAME, "1").tags[
         "entivec.data_fingerprint"]
+
+    # The run log keeps both attempts, newest first: the skip (no version), then the train run that became 1.
+    from entivec.tasks.track import run_log
+
+    log = run_log(NAME)
+    assert log[["kind", "version", "run_id"]].values.tolist() == [
+        ["train-skipped", "", again.run_id], ["train", "1", first.run_id]]
+    assert log["data_fingerprint"].nunique() == 1 and len(log.loc[0, "data_fingerprint"]) == 12
+    assert log.loc[0, "note"] and log["status"].tolist() == ["FINISHED", "FINISHED"]
+    code, output = run_cli(["runs", NAME, "--format", "json"])
+    assert code == 0, output
+    assert [(r["kind"], r["version"]) for r in json.loads(output)] == [("train-skipped", ""), ("train", "1")]
+    code, output = run_cli(["runs", "no-such-model"])
+    assert code == 2 and "no registered model named 'no-such-model'" in output
 
 
 def test_incremental_retrain_stops_on_drift_and_keeps_ids_when_it_passes(

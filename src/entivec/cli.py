@@ -171,6 +171,33 @@ def sweep(
 
 
 @app.command()
+def runs(
+    name: Annotated[str, typer.Argument(help="Registered model name.")],
+    limit: Annotated[int, typer.Option(min=1, help="Show at most this many runs, newest first.")] = 20,
+    fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
+) -> None:
+    """Every run of a model, newest first: trains, skips (no new data), drift stops, gates, sweeps."""
+    from entivec.tasks.track import run_log
+
+    if fmt not in ("table", "csv", "json"):
+        _fail(f"--format must be table, csv or json, not {fmt!r}")
+    frame = _run(lambda: run_log(name, limit))
+    if fmt == "csv":
+        typer.echo(frame.to_csv(index=False), nl=False)
+        return
+    if fmt == "json":
+        typer.echo(frame.to_json(orient="records", indent=2))
+        return
+    table = Table(title=f"runs of {name} (newest first)")
+    for header in ("started", "kind", "status", "version", "data", "note"):
+        table.add_column(header, overflow="fold")
+    for row in frame.itertuples(index=False):
+        table.add_row(row.started.replace("T", " ").removesuffix("+00:00"), row.kind, row.status, row.version,
+                      row.data_fingerprint, row.note)
+    console.print(table)
+
+
+@app.command()
 def versions(name: Annotated[str, typer.Argument(help="Registered model name.")]) -> None:
     """List the versions of a model: aliases, creation time, data fingerprint and key metrics."""
     from entivec.tasks import registry
