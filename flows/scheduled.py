@@ -13,6 +13,7 @@ from typing import Any
 import yaml
 from prefect import flow, get_run_logger
 
+from entivec.flows import parallel
 from entivec.flows.lifecycle import GateRefused, promote
 from entivec.flows.train import train
 from entivec.schemas.spec import SpecError
@@ -43,16 +44,24 @@ def train_and_promote(
     skip_unchanged: bool = True,
     reason: str | None = None,
     by: str | None = None,
+    dask: str | None = None,
+    workers: int = parallel.DEFAULT_WORKERS,
 ) -> ScheduledOutcome:
     """Train from the spec (as `entivec train` does), then judge the new version and promote it if the gate passes.
 
     When the train step reports no new data, nothing further happens. A refused gate leaves `production` where
     it was; the refusal, with its figures, is in the model's history and this run's result says so. The gate
     reads its held-out rows through ``spec_path``, from ``source`` when given (the same drop the train step read).
+    ``dask`` ("local" or a scheduler address; default ENTIVEC_DASK_ADDRESS) runs the train step's independent
+    networks on Dask, with ``workers`` processes for a local cluster.
     """
     logger = get_run_logger()
-    outcome = train(spec_path, vocabulary_from=vocabulary_from, source=source, incremental=incremental,
-                    warm_start=warm_start, skip_unchanged=skip_unchanged)
+    # The train step on Dask when ``dask`` (or ENTIVEC_DASK_ADDRESS on the worker) names a cluster.
+    runner = parallel.task_runner(dask, workers=workers)
+    train_step = train.with_options(task_runner=runner) if runner is not None else train
+    with parallel.prefect_api_for_workers(runner):
+        outcome = train_step(spec_path, vocabulary_from=vocabulary_from, source=source, incremental=incremental,
+                             warm_start=warm_start, skip_unchanged=skip_unchanged)
     if outcome.status == NO_NEW_DATA:
         message = f"{outcome.name}: no new data since the last version; nothing trained, nothing promoted"
         logger.info(message)

@@ -331,3 +331,32 @@ def test_out_of_fold_vectors_take_all_folds_at_once_with_the_same_result(diamond
         out_of_fold_vectors(ids, y, fit_folds=lambda rows: [fit_fold(r) for r in rows[:3]], **common)
     with pytest.raises(ValueError, match="exactly one"):
         out_of_fold_vectors(ids, y, fit_fold=fit_fold, fit_folds=fit_folds, **common)
+
+
+def test_scheduled_train_and_promote_can_run_its_train_step_on_dask(
+    tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch
+):
+    # The flow deployments run: its train step on a local Dask cluster must make the same vectors and metrics
+    # as a plain train of the same spec.
+    from entivec.flows import parallel as parallel_module
+    from entivec.flows.scheduled import train_and_promote
+    from entivec.flows.train import train
+    from entivec.tasks import registry
+
+    chosen = []
+    real_choice = parallel_module.task_runner
+    monkeypatch.setattr(parallel_module, "task_runner",
+                        lambda *args, **kwargs: chosen.append(real_choice(*args, **kwargs)) or chosen[-1])
+
+    spec_path = write_case(tmp_path, diamonds_frame)
+    assert train(spec_path).version == "1"
+    outcome = train_and_promote(spec_path, skip_unchanged=False, dask="local", workers=2, by="test")
+    assert outcome.version == "2" and outcome.status in ("promoted", "refused")
+    assert [type(r).__name__ for r in chosen] == ["DaskTaskRunner"]
+    client = registry.client()
+    sequential, parallel = (_comparable_metrics(client.get_run(registry.resolve("stone-prices", v).run_id))
+                            for v in ("1", "2"))
+    assert "network_rmse" in sequential and parallel == sequential
+    first, second = (registry.load_version("stone-prices", v).vector_set for v in ("1", "2"))
+    for column in ("clarity", "color"):
+        assert np.array_equal(first.vectors[column], second.vectors[column])
