@@ -183,7 +183,7 @@ def _log_sweep(spec: Spec, spec_path: str, table: pd.DataFrame, summary: str, pr
         run_name=f"sweep {spec.name} {datetime.now(UTC):%Y-%m-%d %H:%M}",
         tags={kind: "sweep", f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(), "mlflow.note.content": summary},
     ).info.run_id
-    try:
+    with registry.ending_run(c, parent):
         c.log_param(parent, "spec_path", str(Path(spec_path).resolve()))
         c.log_param(parent, "primary_metric", primary)
         c.log_text(parent, table.to_csv(index=False), "sweep.csv")
@@ -207,10 +207,6 @@ def _log_sweep(spec: Spec, spec_path: str, table: pd.DataFrame, summary: str, pr
             c.log_batch(child, params=params, metrics=metrics)
             c.set_terminated(child, status="FINISHED")
             c.log_metric(parent, "valid_loss", float(row["valid_loss"]), stamp, step)
-    except BaseException:
-        c.set_terminated(parent, status="FAILED")
-        raise
-    c.set_terminated(parent, status="FINISHED")
     return parent
 
 

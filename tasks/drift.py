@@ -558,17 +558,13 @@ def record_outcome_run(spec: Spec, kind: str, fingerprint_sha: str, note: str, t
         },
     )
     run_id = run.info.run_id
-    try:
+    with registry.ending_run(c, run_id):
         if report is not None:
             project_home().mkdir(parents=True, exist_ok=True)
             with tempfile.TemporaryDirectory(prefix="drift-", dir=project_home()) as scratch:
                 c.log_artifacts(run_id, str(write_report(report, Path(scratch))), REPORT_FOLDER)
             c.log_metric(run_id, "drift_max_psi", report.largest("psi"))
             c.log_metric(run_id, "drift_max_new_category_share", report.largest("new_category_share"))
-    except BaseException:
-        c.set_terminated(run_id, status="FAILED")
-        raise
-    c.set_terminated(run_id, status="FINISHED")
     return run_id
 
 

@@ -5,6 +5,8 @@ from __future__ import annotations
 import re
 import shutil
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -36,6 +38,20 @@ def client() -> MlflowClient:
     mlflow.set_tracking_uri(uri)
     mlflow.set_registry_uri(uri)
     return MlflowClient(tracking_uri=uri, registry_uri=uri)
+
+
+@contextmanager
+def ending_run(c: MlflowClient, run_id: str) -> Iterator[str]:
+    """Close a run made with the client: FINISHED when the block completes, FAILED (then re-raised) when it raises.
+
+    A run left RUNNING after a crash would read as still in progress in every listing of the experiment.
+    """
+    try:
+        yield run_id
+    except BaseException:
+        c.set_terminated(run_id, status="FAILED")
+        raise
+    c.set_terminated(run_id, status="FINISHED")
 
 
 def experiment_for(name: str) -> str:

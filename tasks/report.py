@@ -291,7 +291,7 @@ def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bo
         },
     )
     run_id = run.info.run_id
-    try:
+    with registry.ending_run(c, run_id):
         stamp = int(datetime.now(UTC).timestamp() * 1000)
         metrics = [Metric("judged_rows", float(result.rows), stamp, 0)]
         for key, interval in result.intervals.items():
@@ -305,10 +305,6 @@ def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bo
         with tempfile.TemporaryDirectory(prefix="gate-", dir=project_home()) as scratch:
             _write_gate_folder(result, Path(scratch), verdict=verdict, by=by, reason=reason, spec_path=spec_path)
             c.log_artifacts(run_id, scratch, GATE_FOLDER)
-    except BaseException:
-        c.set_terminated(run_id, status="FAILED")
-        raise
-    c.set_terminated(run_id, status="FINISHED")
     return run_id
 
 

@@ -92,7 +92,7 @@ def record_run(
         },
     )
     run_id = run.info.run_id
-    try:
+    with registry.ending_run(c, run_id):
         params = [Param(k, v) for k, v in spec_params(spec).items()]
         for start in range(0, len(params), 90):
             c.log_batch(run_id, params=params[start : start + 90])
@@ -112,10 +112,6 @@ def record_run(
             c.log_batch(run_id, metrics=everything[start : start + 900])
         c.set_tag(run_id, "mlflow.note.content", summary)
         c.log_artifacts(run_id, str(bundle))
-    except BaseException:
-        c.set_terminated(run_id, status="FAILED")
-        raise
-    c.set_terminated(run_id, status="FINISHED")
     return run_id
 
 

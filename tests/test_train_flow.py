@@ -142,3 +142,18 @@ def test_cli_train_versions_export(tmp_path, run_cli, diamonds_frame):
     assert code == 2 and "no registered model named 'no-such-model'" in output
     code, output = run_cli(["export", "stone-prices", "production", "--out", str(out)])
     assert code == 2 and "no alias 'production'" in output
+
+
+def test_a_run_that_fails_while_being_filled_is_closed_as_failed(entivec_home):
+    # MLflow's own run statuses: a block that raises must not leave the run RUNNING.
+    from entivec.tasks import registry
+
+    c = registry.client()
+    experiment = registry.experiment_for("stone-prices")
+    good = c.create_run(experiment).info.run_id
+    with registry.ending_run(c, good):
+        c.log_param(good, "step", "done")
+    bad = c.create_run(experiment).info.run_id
+    with pytest.raises(RuntimeError, match="disk full"), registry.ending_run(c, bad):
+        raise RuntimeError("disk full")
+    assert [c.get_run(r).info.status for r in (good, bad)] == ["FINISHED", "FAILED"]
