@@ -30,8 +30,9 @@ import pyarrow.parquet as pq
 
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import UNKNOWN, Vocabulary
-from entivec.tasks.apply import ChunkBuffers, append_vectors, apply_file
-from entivec.tasks.lookup_model import ColumnLookup, lookup_frame
+from entivec.tasks.apply.batch import ChunkBuffers, append_vectors, apply_file
+from entivec.tasks.apply.lookup import ColumnLookup
+from entivec.tasks.apply.served import lookup_frame
 
 COLUMN = "store"
 UNSEEN_SHARE = 0.01

@@ -22,24 +22,19 @@ def plain_steps(module):
     """Swap every Prefect task the flow module uses for its plain function, for the duration.
 
     Covers the tasks the module imports by name and those it reaches through a task module (``drift.``,
-    ``audit.``, ...); the cross-fitting step that submits one task per fold is swapped for its sequential
-    plain-function twin.
+    ``audit.``, ...). Cross-fitting needs no swap: called outside a flow run it trains its folds one by one.
     """
     import types
 
     from prefect import Task
-
-    from entivec.tasks import crossfit
 
     owners = [module] + [
         obj for obj in vars(module).values()
         if isinstance(obj, types.ModuleType) and obj.__name__.startswith("entivec.tasks.")
     ]
     saved = [(owner, name, obj) for owner in owners for name, obj in vars(owner).items() if isinstance(obj, Task)]
-    if hasattr(module, "cross_fit_vectors_submitted"):
-        saved.append((module, "cross_fit_vectors_submitted", module.cross_fit_vectors_submitted))
     for owner, name, obj in saved:
-        setattr(owner, name, obj.fn if isinstance(obj, Task) else crossfit.cross_fit_vectors)
+        setattr(owner, name, obj.fn)
     try:
         yield
     finally:

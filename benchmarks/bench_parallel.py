@@ -4,10 +4,10 @@ Run:  python benchmarks/bench_parallel.py             (100,000 rows, 5 folds, 2 
       python benchmarks/bench_parallel.py --quick     (20,000 rows, 3 folds: a smoke run)
 
 What is printed, all measured in this one run on this machine:
-  (a) the sequential wall time of ``tasks.crossfit.cross_fit_vectors`` (every fold trained in this process),
+  (a) the sequential wall time of ``cross_fit_vectors`` outside a flow (every fold trained in this process),
       measured once before and once after the parallel run so that both see the same state of a shared machine;
   (b) the wall time of the same step on a ``LocalCluster`` (``flows.parallel.local_cluster``: N worker
-      processes, one thread each) through Prefect's ``DaskTaskRunner``: ``cross_fit_vectors_submitted`` timed
+      processes, one thread each) through Prefect's ``DaskTaskRunner``: ``cross_fit_vectors`` timed
       inside the flow body, so the cluster's start-up (with each worker importing torch and entivec once, as a
       long-lived cluster would have done already, and one small warm-up fold per worker inside the flow) and
       the flow run's start-up are printed separately;
@@ -37,8 +37,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_trainer import CARDINALITIES, cpu_pressure, make_table  # noqa: E402
 
 from entivec.schemas.spec import spec_from_dict  # noqa: E402
-from entivec.tasks.crossfit import cross_fit_vectors, cross_fit_vectors_submitted, submit_folds  # noqa: E402
-from entivec.tasks.train import EncodedInputs, fit_network  # noqa: E402
+from entivec.tasks.evidence.crossfit import cross_fit_vectors, submit_folds  # noqa: E402
+from entivec.tasks.train.encoder import EncodedInputs
+from entivec.tasks.train.trainer import fit_network  # noqa: E402
 
 COLUMNS = [f"c{j}" for j in range(len(CARDINALITIES))]
 SIZES = [8, 16, 32]
@@ -75,13 +76,13 @@ def crossfit_flow(folder: str, warm_tasks: int = 0) -> tuple[dict[str, np.ndarra
                                task="regression")
         [f.result() for f in futures]
     started = time.perf_counter()
-    oof = cross_fit_vectors_submitted(inputs, data["y"], spec, [c + 1 for c in CARDINALITIES], SIZES, reference)
+    oof = cross_fit_vectors(inputs, data["y"], spec, [c + 1 for c in CARDINALITIES], SIZES, reference)
     return oof, time.perf_counter() - started
 
 
 def _warm_up() -> bool:
     """In each worker: import what a fold needs, as a long-lived cluster's workers would have done already."""
-    import entivec.tasks.crossfit  # noqa: F401
+    import entivec.tasks.evidence.crossfit  # noqa: F401
 
     return True
 

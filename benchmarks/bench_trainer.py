@@ -43,7 +43,9 @@ import torch
 import torch.nn.functional as F
 
 from entivec.schemas.spec import EmbedColumn, TrainingSpec, embedding_size
-from entivec.tasks.train import EncodedInputs, EntityNet, count_parameters, default_threads, fit_network
+from entivec.tasks.train.encoder import EncodedInputs
+from entivec.tasks.train.network import EntityNet, count_parameters
+from entivec.tasks.train.trainer import default_threads, fit_network
 
 CARDINALITIES = [50, 2_000, 50_000]  # real categories; each table has one more row for the unknown id 0
 NUMERICS = 10

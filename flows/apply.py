@@ -11,9 +11,9 @@ from prefect.cache_policies import NO_CACHE
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-from entivec.tasks import registry
-from entivec.tasks.apply import DEFAULT_CHUNK_ROWS, ApplyResult, apply_file_task
-from entivec.tasks.lookup_model import DEFAULT_UNKNOWN, check_unknown_rule
+from entivec.tasks.apply.batch import DEFAULT_CHUNK_ROWS, ApplyResult, apply_file_task
+from entivec.tasks.apply.lookup import DEFAULT_UNKNOWN, check_unknown_rule
+from entivec.tasks.lifecycle import registry
 
 
 @task(name="load-vectors", retries=2, retry_delay_seconds=2, cache_policy=NO_CACHE)

@@ -1,6 +1,6 @@
 """The lifecycle verbs: promote a version to `production` through the gate, roll back, report, compare.
 
-Every alias move goes through the audit history (``tasks/audit.py``): intent first, then the move, then its
+Every alias move goes through the audit history (``tasks/lifecycle/audit.py``): intent first, then the move, then its
 settlement, under the model's lifecycle lock, so the aliases and the history never disagree.
 """
 
@@ -15,10 +15,15 @@ from prefect.cache_policies import NO_CACHE
 from prefect.states import Failed
 
 from entivec.schemas.spec import Spec
-from entivec.tasks import audit, gate, registry, report
-from entivec.tasks.compare import ColumnComparison, columns_of, compare_vector_sets, comparison_table
-from entivec.tasks.ingest import clean, data_fingerprint, ingest, read_source, split, split_rows, validate_and_clean
-from entivec.tasks.track import now_iso, operator
+from entivec.tasks.ingest.clean import clean, validate_and_clean
+from entivec.tasks.ingest.fingerprint import data_fingerprint
+from entivec.tasks.ingest.read import ingest, read_source
+from entivec.tasks.ingest.split import split, split_rows
+from entivec.tasks.lifecycle import audit, checks, gate, registry, track
+from entivec.tasks.lifecycle.compare import ColumnComparison, columns_of, compare_vector_sets, comparison_table
+from entivec.tasks.lifecycle.rows import spec_for, unseen_rows
+from entivec.tasks.lifecycle.track import now_iso, operator
+from entivec.tasks.present import report
 
 
 class LifecycleError(registry.RegistryError):
@@ -94,7 +99,7 @@ def load_versions(
 def read_gate_spec(
     name: str, candidate: registry.LoadedVersion, spec_path: str | None, source: str | None = None
 ) -> tuple[Spec, str]:
-    return gate.spec_for(name, candidate, spec_path, source)
+    return spec_for(name, candidate, spec_path, source)
 
 
 @task(name="record-gate-evidence", cache_policy=NO_CACHE, retries=2, retry_delay_seconds=2)
@@ -151,7 +156,7 @@ def promote(
         get_run_logger().warning("version report not written (%s); run `entivec report %s %s`", exc, name,
                                  result.candidate_version)
         report_path, link = "(not written)", ""
-    report.markdown_in_prefect(
+    track.markdown_in_prefect(
         f"{name}-gate-v{candidate.version}", _gate_markdown(result, forced, who, reason, link),
         f"promotion gate of {name} version {candidate.version}",
     )
@@ -204,7 +209,7 @@ def rollback_production(name: str, reason: str, by: str) -> RollbackOutcome:
             registry.PRODUCTION, target, event="rollback", by=by, reason=reason, data_fingerprint=fingerprint,
             details={"figures": {"replaced": f"version {current}"}}, expected_from=current,
         )
-    report.markdown_in_prefect(
+    track.markdown_in_prefect(
         f"{name}-rollback", f"# {name}: production rolled back from version {current} to version {target}\n\n"
         f"By {by} at {entry.at}: {reason}", f"rollback of {name}",
     )
@@ -271,21 +276,21 @@ def diff_versions(name: str, a: str, b: str, *, spec_path: str | None = None, ne
 def _judge_pair(
     name: str, older: registry.LoadedVersion, newer: registry.LoadedVersion, spec_path: str
 ) -> tuple[pd.DataFrame, str]:
-    spec, spec_file = gate.spec_for(name, newer, spec_path)
+    spec, spec_file = spec_for(name, newer, spec_path)
     raw, files = read_source(spec, spec_file)
     cleaned = validate_and_clean(raw, spec, files)
     train_rows, test_rows = split_rows(cleaned.frame, spec.split)
     labels = {f"v{older.version}": older, f"v{newer.version}": newer}
-    rows = gate.unseen_rows(test_rows, spec, labels, data_fingerprint(raw, files)["sha256"])
+    rows = unseen_rows(test_rows, spec, labels, data_fingerprint(raw, files)["sha256"])
     if len(rows.frame) < 2:
         raise LifecycleError(f"no held-out rows of {spec_file} are unseen by both versions; cannot judge them")
     downstream = gate.judge_downstream(spec, train_rows, rows.frame, {k: v.vector_set for k, v in labels.items()})
-    interval = gate.paired_bootstrap(
+    interval = checks.paired_bootstrap(
         downstream.losses[f"v{older.version}"], downstream.losses[f"v{newer.version}"],
         confidence=spec.promotion.confidence, resamples=spec.promotion.bootstrap_resamples, seed=spec.promotion.seed,
     )
     note = (f"Judged on {len(rows.frame):,} held-out rows ({downstream.how}); per-row "
-            f"{gate.loss_name(spec.target.task)}: version {newer.version} vs {older.version} loss reduction "
+            f"{checks.loss_name(spec.target.task)}: version {newer.version} vs {older.version} loss reduction "
             f"{interval.gain_text()} ({100 * interval.confidence:.0f}% paired bootstrap). "
             + "; ".join(rows.notes.values()) + ".")
     return downstream.table, note

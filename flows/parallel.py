@@ -5,7 +5,7 @@ afterwards; ``task_runner("tcp://host:8786")`` connects to a running scheduler; 
 ``ENTIVEC_DASK_ADDRESS`` and, when that is unset too, keeps the flow's own runner. ``run_flow`` runs a flow
 with the chosen runner and makes sure the Dask workers report to the same Prefect server as the flow.
 
-Only work submitted from a flow body reaches the runner: cross-fitting folds (``tasks.crossfit``), sweep
+Only work submitted from a flow body reaches the runner: cross-fitting folds (``tasks/evidence/crossfit.py``), sweep
 candidates (``flows.sweep``), whole train runs (``flows.sweep.train_many``).
 """
 

@@ -29,20 +29,24 @@ from prefect.cache_policies import NO_CACHE
 from prefect.context import FlowRunContext
 
 from entivec.schemas.spec import Spec, TrainingSpec, embedding_size, load_spec
-from entivec.tasks import registry, targets
-from entivec.tasks.crossfit import TORCH_LOCK, submit_folds
-from entivec.tasks.evaluate import (
-    NON_VECTOR_SETS,
-    capped_rows,
-    evaluate_downstream,
+from entivec.tasks.evidence.crossfit import (
+    TORCH_LOCK,
     fold_splitter,
     out_of_fold_vectors,
+    submit_folds,
     vectors_for_ids,
 )
-from entivec.tasks.ingest import clean, ingest, split
-from entivec.tasks.metrics import task_metrics
-from entivec.tasks.train import EncodedInputs, FeatureEncoder, fit_network, predict
-from entivec.tasks.vocabulary import build_vocabularies_task
+from entivec.tasks.evidence.downstream import NON_VECTOR_SETS, capped_rows, evaluate_downstream
+from entivec.tasks.evidence.metrics import task_metrics
+from entivec.tasks.ingest.clean import clean
+from entivec.tasks.ingest.read import ingest
+from entivec.tasks.ingest.split import split
+from entivec.tasks.lifecycle import registry
+from entivec.tasks.train import targets
+from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder
+from entivec.tasks.train.network import predict
+from entivec.tasks.train.trainer import fit_network
+from entivec.tasks.train.vocabulary import build_vocabularies_task
 
 SIZE_RULES = ("fourth_root", "half_capped", "power_056")
 DEFAULT_CANDIDATES = ("spec", *SIZE_RULES, "x0.5", "x2")
@@ -128,7 +132,7 @@ def fit_candidate(
 ) -> CandidateFit:
     """Train one candidate's network on all training rows; its vectors, validation loss and test predictions."""
     quiet = training.model_copy(update={"progress": False})
-    with TORCH_LOCK:  # see tasks.crossfit: one network at a time per process
+    with TORCH_LOCK:  # see tasks/evidence/crossfit.py: one network at a time per process
         result = fit_network(
             inputs, y, columns=columns, cardinalities=cardinalities, sizes=sizes, training=quiet, task=task,
             label="sweep",

@@ -12,16 +12,23 @@ from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
 from entivec.settings import project_home
-from entivec.tasks import audit, drift, gate, registry, report, targets
-from entivec.tasks.bundle import BundleInputs, write_bundle_task
-from entivec.tasks.crossfit import cross_fit_vectors_submitted
-from entivec.tasks.evaluate import capped_rows, evaluate_downstream, vectors_for_ids
-from entivec.tasks.ingest import clean, ingest, split
-from entivec.tasks.ingest import data_fingerprint as fingerprint_of
-from entivec.tasks.metrics import task_metrics
-from entivec.tasks.track import record_run_task, register_version_task
-from entivec.tasks.train import FeatureEncoder, predict, train_vectors
-from entivec.tasks.vocabulary import build_vocabularies_task
+from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
+from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
+from entivec.tasks.evidence.metrics import task_metrics
+from entivec.tasks.ingest.clean import clean
+from entivec.tasks.ingest.fingerprint import data_fingerprint as fingerprint_of
+from entivec.tasks.ingest.read import ingest
+from entivec.tasks.ingest.split import split
+from entivec.tasks.lifecycle import audit, drift, outcomes, profile, registry
+from entivec.tasks.lifecycle import rows as held_rows
+from entivec.tasks.lifecycle.bundle import BundleInputs, write_bundle_task
+from entivec.tasks.lifecycle.track import record_run_task, register_version_task
+from entivec.tasks.present import plots, report
+from entivec.tasks.train import targets
+from entivec.tasks.train.encoder import FeatureEncoder
+from entivec.tasks.train.network import predict
+from entivec.tasks.train.trainer import train_vectors
+from entivec.tasks.train.vocabulary import build_vocabularies_task
 
 
 @dataclass
@@ -56,7 +63,7 @@ def earlier_version(name: str, version_or_alias: str) -> registry.LoadedVersion:
 
 def _no_new_data(spec: Spec, same, fingerprint: dict) -> TrainOutcome:
     """The outcome of a run whose input the latest version was already trained on; recorded, nothing trained."""
-    run_id = drift.record_skip_task(spec, str(same.version), fingerprint["sha256"])
+    run_id = outcomes.record_skip_task(spec, str(same.version), fingerprint["sha256"])
     tags = same.tags or {}
     used = int(tags.get("entivec.rows_used", fingerprint["rows"]))
     summary = (f"no new data: version {same.version} of {spec.name} was trained on this very data with this spec; "
@@ -92,7 +99,7 @@ def train(
     raw, files = ingest(spec, spec_path)
     fingerprint = fingerprint_of(raw, files)
     if skip_unchanged:
-        same = drift.latest_same_input_task(spec.name, fingerprint["sha256"], spec.content_hash())
+        same = outcomes.latest_same_input_task(spec.name, fingerprint["sha256"], spec.content_hash())
         if same is not None:
             return _no_new_data(spec, same, fingerprint)
     cleaned = clean(raw, spec, files)
@@ -108,7 +115,8 @@ def train(
             drift_report = drift.compare_task(reference, raw, cleaned.frame, spec, fingerprint["sha256"])
             drift.publish_in_prefect(drift_report)
             if not drift_report.passed:  # recorded, then stopped: production and the registry stay untouched
-                raise drift.DriftStop(drift_report, drift.record_stop_task(spec, drift_report, fingerprint["sha256"]))
+                stopped = outcomes.record_stop_task(spec, drift_report, fingerprint["sha256"])
+                raise drift.DriftStop(drift_report, stopped)
             notes.append(f"incremental: drift against production version {reference.version} passed")
     train_rows, test_rows = split(cleaned.frame, spec.split)
 
@@ -140,7 +148,7 @@ def train(
     rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
     subset = train_inputs.take(rows)
     # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
-    oof = cross_fit_vectors_submitted(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
+    oof = cross_fit_vectors(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
     in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
     on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
@@ -154,12 +162,13 @@ def train(
         bundle = BundleInputs(
             spec, spec_text, fingerprint, cleaned.ledger, cleaned.quarantine, vocabularies, encoder,
             result, evidence, network_metrics, y_test, network_pred,
-            profile=drift.data_profile_task(raw, train_rows, spec),
+            profile=profile.data_profile_task(raw, train_rows, spec),
         )
         vector_folder = write_bundle_task(bundle, workdir)
+        plots.write_run_plots(bundle, workdir)
         if drift_report is not None:  # the check it passed travels with the run
             drift.write_report(drift_report, workdir / drift.REPORT_FOLDER)
-        gate.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
+        held_rows.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
         metrics = {f"network_{k}": v for k, v in network_metrics.items()}
         for row in evidence.table.to_dict("records"):
             for key, value in row.items():
@@ -178,8 +187,8 @@ def train(
             "entivec.rows_used": str(cleaned.ledger.rows_used),
             "entivec.primary_metric": evidence.primary_metric,
             "entivec.vectors_help": str(evidence.vectors_help).lower(),
-            gate.SPEC_PATH_TAG: str(Path(spec_path).resolve()),
-            **({gate.SOURCE_TAG: spec.source.path} if source is not None else {}),
+            held_rows.SPEC_PATH_TAG: str(Path(spec_path).resolve()),
+            **({held_rows.SOURCE_TAG: spec.source.path} if source is not None else {}),
             **({"entivec.incremental": "; ".join(notes)} if notes else {}),
             **{f"entivec.network_{k}": f"{v:.6g}" for k, v in network_metrics.items()},
         }

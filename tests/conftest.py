@@ -98,7 +98,7 @@ def registered_versions(entivec_home):
     """How many versions of a model the test's store holds (0 when the model does not exist)."""
 
     def count(name: str) -> int:
-        from entivec.tasks import registry
+        from entivec.tasks.lifecycle import registry
 
         return len(registry.client().search_model_versions(f"name = '{name}'"))
 

@@ -69,10 +69,16 @@ def make_version(spec_path: str, *, shuffle_target: bool = False, seed: int = 0,
     from entivec.schemas.vector_set import VectorSet
     from entivec.schemas.vocabulary import Vocabulary
     from entivec.settings import project_home
-    from entivec.tasks import audit, registry, targets, track
-    from entivec.tasks.gate import SPEC_PATH_TAG, write_train_ids
-    from entivec.tasks.ingest import data_fingerprint, read_source, split_rows, validate_and_clean
-    from entivec.tasks.train import FeatureEncoder, fit_network, save_weights
+    from entivec.tasks.ingest.clean import validate_and_clean
+    from entivec.tasks.ingest.fingerprint import data_fingerprint
+    from entivec.tasks.ingest.read import read_source
+    from entivec.tasks.ingest.split import split_rows
+    from entivec.tasks.lifecycle import audit, registry, track
+    from entivec.tasks.lifecycle.rows import SPEC_PATH_TAG, write_train_ids
+    from entivec.tasks.train import targets
+    from entivec.tasks.train.encoder import FeatureEncoder
+    from entivec.tasks.train.network import save_weights
+    from entivec.tasks.train.trainer import fit_network
 
     spec = load_spec(spec_path)
     raw, files = read_source(spec, spec_path)

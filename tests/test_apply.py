@@ -41,8 +41,8 @@ def leftovers(folder: Path) -> list[str]:
 
 def test_parquet_apply_matches_the_transformer_and_records_the_version(store, tmp_path, prefect_server):
     from entivec.flows.apply import apply
-    from entivec.tasks import registry
-    from entivec.tasks.apply import read_provenance
+    from entivec.tasks.apply.batch import read_provenance
+    from entivec.tasks.lifecycle import registry
 
     source = tmp_path / "stones.parquet"
     store.frame.to_parquet(source, index=False)
@@ -100,7 +100,7 @@ def test_csv_apply_by_version_number_with_every_rule(store, tmp_path, prefect_se
 
 
 def test_chunks_never_exceed_the_chunk_size(store, tmp_path):
-    from entivec.tasks.apply import open_input, read_chunks
+    from entivec.tasks.apply.batch import open_input, read_chunks
 
     frame = store.frame.head(10_000)
     frame.to_parquet(tmp_path / "a.parquet", index=False, row_group_size=4_096)
@@ -116,7 +116,7 @@ def test_chunks_never_exceed_the_chunk_size(store, tmp_path):
 
 
 def test_missing_column_fails_naming_file_and_column(store, tmp_path):
-    from entivec.tasks.apply import ApplyInputError, apply_file
+    from entivec.tasks.apply.batch import ApplyInputError, apply_file
 
     source = tmp_path / "no-color.parquet"
     store.frame.drop(columns=["color"]).head(100).to_parquet(source, index=False)
@@ -140,7 +140,7 @@ def test_missing_column_fails_naming_file_and_column(store, tmp_path):
     ids=["floats", "struct", "list"],
 )
 def test_wrong_column_type_fails_before_writing(store, tmp_path, bad, expected):
-    from entivec.tasks.apply import ApplyInputError, apply_file
+    from entivec.tasks.apply.batch import ApplyInputError, apply_file
 
     table = pa.Table.from_pandas(store.frame.head(100), preserve_index=False)
     table = table.set_column(table.schema.get_field_index("color"), "color", bad)
@@ -158,7 +158,7 @@ def test_wrong_column_type_fails_before_writing(store, tmp_path, bad, expected):
 
 
 def test_failure_in_a_late_chunk_keeps_the_old_output_intact(store, tmp_path):
-    from entivec.tasks.apply import ApplyInputError, apply_file
+    from entivec.tasks.apply.batch import ApplyInputError, apply_file
 
     frame = store.frame[store.frame["clarity"] != "I1"].head(5_000).reset_index(drop=True)  # no rare rows
     frame.loc[4_990, "cut"] = "Astonishing"  # unseen, in the last chunk only
@@ -175,7 +175,7 @@ def test_failure_in_a_late_chunk_keeps_the_old_output_intact(store, tmp_path):
 
 
 def test_bad_input_files_fail_clearly(store, tmp_path):
-    from entivec.tasks.apply import ApplyInputError, apply_file
+    from entivec.tasks.apply.batch import ApplyInputError, apply_file
 
     def run(source, **kw):
         return apply_file(
@@ -248,7 +248,7 @@ def test_cli_apply(store, tmp_path, prefect_server):
 
 
 def test_fast_lookup_gives_exactly_the_vocabulary_ids(store):
-    from entivec.tasks.lookup_model import ColumnLookup
+    from entivec.tasks.apply.lookup import ColumnLookup
 
     vocab = store.v1.vocabularies["clarity"]
     lookup = ColumnLookup("clarity", vocab, store.v1.vectors["clarity"])
@@ -297,7 +297,7 @@ def test_fast_lookup_gives_exactly_the_vocabulary_ids(store):
 def test_exports_in_plain_formats_mark_the_unknown_row(store, tmp_path):
     from entivec.schemas.vector_set import column_file_stem
     from entivec.schemas.vocabulary import UNKNOWN, Vocabulary
-    from entivec.tasks.export import export_vector_set
+    from entivec.tasks.apply.export import export_vector_set
 
     written = export_vector_set(store.v1, tmp_path)
     assert len(written) == 4 * len(CATEGORY_COLUMNS) + 1 and all(p.exists() for p in written)
@@ -329,7 +329,7 @@ def test_exports_in_plain_formats_mark_the_unknown_row(store, tmp_path):
 
 
 def test_csv_edge_cases(store, tmp_path):
-    from entivec.tasks.apply import ApplyInputError, apply_file
+    from entivec.tasks.apply.batch import ApplyInputError, apply_file
 
     def run(source, target, **kw):
         return apply_file(

@@ -16,7 +16,7 @@ MODEL = "depot-vectors"
 
 def _register(name: str, versions: int) -> None:
     """Versions that exist in the registry (their content does not matter to the history)."""
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     c = registry.client()
     run = c.create_run(registry.experiment_for(name))
@@ -32,13 +32,13 @@ def store(entivec_home):
 
 
 def _tags() -> dict[str, str]:
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     return dict(registry.client().get_registered_model(MODEL).tags)
 
 
 def test_history_follows_a_scripted_sequence(store):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     audit.record_move(MODEL, "staging", "1", event="train", by="ana", reason="first data")
     audit.record_move(MODEL, "production", "1", event="promote", by="ana", reason="first release",
@@ -72,7 +72,7 @@ def test_history_follows_a_scripted_sequence(store):
 
 
 def test_entries_are_never_rewritten(store):
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
 
     audit.record_move(MODEL, "production", "1", event="promote", reason="one")
     before = _tags()
@@ -85,7 +85,7 @@ def test_entries_are_never_rewritten(store):
 
 
 def test_a_move_interrupted_after_the_alias_moved_is_repaired(store, monkeypatch):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     audit.record_move(MODEL, "production", "1", event="promote", reason="one")
 
@@ -109,7 +109,7 @@ def test_a_move_interrupted_after_the_alias_moved_is_repaired(store, monkeypatch
 
 
 def test_a_move_interrupted_before_the_alias_moved_is_abandoned(store, monkeypatch):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     audit.record_move(MODEL, "production", "1", event="promote", reason="one")
 
@@ -128,7 +128,7 @@ def test_a_move_interrupted_before_the_alias_moved_is_abandoned(store, monkeypat
 
 
 def test_moves_made_with_another_tool_are_recorded(store):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     audit.record_move(MODEL, "production", "1", event="promote", reason="one")
     registry.client().set_registered_model_alias(MODEL, "production", "3")  # e.g. from the MLflow UI
@@ -145,13 +145,13 @@ def _child(code: str, **env: str) -> subprocess.Popen:
 
 
 def test_a_process_killed_between_move_and_record_is_repaired(store):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     audit.record_move(MODEL, "production", "1", event="promote", reason="one")
     # The child dies for real (os._exit: no clean-up, no finally) right after moving the alias.
     child = _child(f"""
         import os
-        from entivec.tasks import audit
+        from entivec.tasks.lifecycle import audit
         audit._fault_hook = lambda point: os._exit(17) if point == "after_move" else None
         audit.record_move({MODEL!r}, "production", "4", event="promote", by="dora", reason="crash test")
     """)
@@ -165,7 +165,7 @@ def test_a_process_killed_between_move_and_record_is_repaired(store):
 
 WORKER = """
     import random, sys
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
     rng = random.Random(int(sys.argv[1]) if len(sys.argv) > 1 else {seed})
     for i in range({moves}):
         with audit.locked({model!r}) as session:
@@ -177,7 +177,7 @@ WORKER = """
 
 @pytest.mark.parametrize(("mode", "workers"), [("file", 3), ("registry", 2)])
 def test_concurrent_processes_never_leave_history_and_aliases_disagreeing(store, mode, workers):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     moves = 4
     children = [_child(WORKER.format(seed=s, moves=moves, model=MODEL), ENTIVEC_LIFECYCLE_LOCK=mode)
@@ -198,7 +198,7 @@ def test_concurrent_processes_never_leave_history_and_aliases_disagreeing(store,
 
 
 def test_file_lock_times_out_with_a_clear_message(store):
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
 
     with audit.locked(MODEL), pytest.raises(audit.AuditError, match="locked by another lifecycle command"):
         with audit.locked(MODEL, timeout=0.3):
@@ -206,7 +206,7 @@ def test_file_lock_times_out_with_a_clear_message(store):
 
 
 def test_registry_lease_blocks_expires_and_is_removed(store, monkeypatch):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     monkeypatch.setenv(audit.LOCK_MODE_VARIABLE, "registry")
     lease = MODEL + audit.LEASE_SUFFIX
@@ -227,7 +227,7 @@ def test_registry_lease_blocks_expires_and_is_removed(store, monkeypatch):
 
 
 def test_names_aliases_and_versions_are_checked(store):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     with pytest.raises(registry.RegistryError, match="not valid"):
         audit.history("bad name!")
@@ -246,7 +246,7 @@ def test_names_aliases_and_versions_are_checked(store):
 
 
 def test_a_large_entry_stays_within_the_tag_limit(store):
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
 
     details = {"figures": {"rows": "5000"}, "failed_checks": [f"check {i} " * 20 for i in range(200)],
                "evidence_run": "abc", "notes": "x" * 20_000}

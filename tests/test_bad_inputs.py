@@ -11,7 +11,9 @@ import pytest
 import yaml
 
 from entivec.schemas.spec import SpecError, load_spec
-from entivec.tasks.ingest import InputError, read_source, split_rows, validate_and_clean
+from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.read import InputError, read_source
+from entivec.tasks.ingest.split import split_rows
 
 MODEL = "depots"
 HEADER = "shipment,depot,weight,cost,shipped"

@@ -11,7 +11,7 @@ from sklearn.neighbors import NearestNeighbors
 
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import UNKNOWN, Vocabulary
-from entivec.tasks.compare import (
+from entivec.tasks.lifecycle.compare import (
     compare_column,
     compare_vector_sets,
     comparison_table,

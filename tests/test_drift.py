@@ -11,8 +11,9 @@ from scipy.stats import entropy
 
 from entivec.schemas.spec import SpecError, spec_from_dict
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks import drift
-from entivec.tasks.vocabulary import build_vocabularies
+from entivec.tasks.lifecycle import drift
+from entivec.tasks.lifecycle import profile as profiling
+from entivec.tasks.train.vocabulary import build_vocabularies
 
 SPEC = {
     "name": "stone-prices",
@@ -38,7 +39,7 @@ def reference_from(rows: pd.DataFrame, spec_dict: dict = SPEC, profiled: bool = 
     spec = spec_from_dict(spec_dict)
     vocabularies = build_vocabularies(rows, spec)
     vector_set = VectorSet(vocabularies, {c: np.zeros((v.size, 2), dtype=np.float32) for c, v in vocabularies.items()})
-    profile = drift.data_profile(rows, rows, spec) if profiled else None
+    profile = profiling.data_profile(rows, rows, spec) if profiled else None
     columns = profile["data_columns"] if profiled else {c: None for c in rows.columns}
     return drift.Reference(spec.name, "1", "production", "run", vector_set, profile, spec, columns)
 
@@ -57,10 +58,10 @@ def test_psi_matches_a_hand_worked_example():
     #   (.4 - .3) * ln(.4/.3) = ( .1) * ( .2876821) = .0287682
     #   (.2 - .2) * ln(1)     = 0
     #   PSI = .0510826
-    assert drift.psi([50, 30, 20], [80, 80, 40]) == pytest.approx(0.0510826, abs=1e-7)
+    assert profiling.psi([50, 30, 20], [80, 80, 40]) == pytest.approx(0.0510826, abs=1e-7)
     # A bin empty on both sides is no bin at all.
-    assert drift.psi([50, 30, 0, 20], [80, 80, 0, 40]) == pytest.approx(0.0510826, abs=1e-7)
-    assert drift.psi([1, 2, 3], [1, 2, 3]) == 0.0
+    assert profiling.psi([50, 30, 0, 20], [80, 80, 0, 40]) == pytest.approx(0.0510826, abs=1e-7)
+    assert profiling.psi([1, 2, 3], [1, 2, 3]) == 0.0
 
 
 def test_psi_is_the_symmetric_kullback_leibler_divergence():
@@ -69,25 +70,26 @@ def test_psi_is_the_symmetric_kullback_leibler_divergence():
     rng = np.random.default_rng(7)
     for bins in (2, 5, 12):
         e, a = rng.dirichlet(np.ones(bins)), rng.dirichlet(np.ones(bins))
-        assert drift.psi(e, a) == pytest.approx(entropy(a, e) + entropy(e, a), rel=1e-12)
+        assert profiling.psi(e, a) == pytest.approx(entropy(a, e) + entropy(e, a), rel=1e-12)
         counts_e, counts_a = np.round(e * 1_000) + 1, np.round(a * 7_000) + 1
-        assert drift.psi(counts_e, counts_a) == pytest.approx(entropy(counts_a, counts_e) + entropy(counts_e, counts_a))
+        expected = entropy(counts_a, counts_e) + entropy(counts_e, counts_a)
+        assert profiling.psi(counts_e, counts_a) == pytest.approx(expected)
 
 
 def test_a_bin_empty_on_one_side_gets_epsilon_and_stays_finite():
-    value = drift.psi([50, 50, 0], [40, 40, 20])
+    value = profiling.psi([50, 50, 0], [40, 40, 20])
     assert math.isfinite(value) and value > 0.25
     # The smaller the floor, the larger the index: the floor is what keeps ln(0) out.
-    assert drift.psi([50, 50, 0], [40, 40, 20], epsilon=1e-6) > value
+    assert profiling.psi([50, 50, 0], [40, 40, 20], epsilon=1e-6) > value
     with pytest.raises(ValueError):
-        drift.psi([1, 2], [1, 2, 3])
+        profiling.psi([1, 2], [1, 2, 3])
     with pytest.raises(ValueError):
-        drift.psi([0, 0], [1, 2])
+        profiling.psi([0, 0], [1, 2])
 
 
 def test_psi_reading_follows_the_usual_bands():
     # Common practice, no source: < 0.1 stable, 0.1-0.25 moderate, > 0.25 major.
-    assert [drift.psi_reading(v) for v in (0.05, 0.1, 0.25, 0.26, None)] == [
+    assert [profiling.psi_reading(v) for v in (0.05, 0.1, 0.25, 0.26, None)] == [
         "stable", "moderate", "moderate", "major", "not profiled"]
 
 
@@ -96,7 +98,7 @@ def test_psi_reading_follows_the_usual_bands():
 
 def test_numeric_profile_bins_agree_with_numpy_and_pandas(diamonds):
     carat = diamonds["carat"].iloc[:5_000]
-    profile = drift.numeric_profile(carat, bins=10)
+    profile = profiling.numeric_profile(carat, bins=10)
     expected_edges = np.unique(np.quantile(carat, [0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9]))
     assert profile["edges"] == pytest.approx(expected_edges.tolist())
     # pandas.cut with right-closed bins and open ends is the reference for which bin a value falls in.
@@ -107,7 +109,7 @@ def test_numeric_profile_bins_agree_with_numpy_and_pandas(diamonds):
 
 def test_profile_records_types_roles_and_points_embedded_columns_at_the_vocabulary(diamonds):
     rows = diamonds.iloc[:1_000]
-    profile = drift.data_profile(rows, rows, spec_from_dict(SPEC))
+    profile = profiling.data_profile(rows, rows, spec_from_dict(SPEC))
     assert profile["data_columns"]["carat"] == "number" and profile["data_columns"]["cut"] == "text"
     assert profile["roles"] == {"stone_id": "id", "price": "target", "clarity": "embed", "color": "embed",
                                 "cut": "onehot", "carat": "numeric", "depth": "numeric", "table": "numeric"}

@@ -21,17 +21,16 @@ from sklearn.preprocessing import TargetEncoder
 
 from entivec.schemas.spec import Spec, spec_from_dict
 from entivec.schemas.vocabulary import Vocabulary
-from entivec.tasks.evaluate import (
+from entivec.tasks.evidence.align import align_to
+from entivec.tasks.evidence.crossfit import out_of_fold_vectors, vectors_for_ids
+from entivec.tasks.evidence.downstream import (
     FEATURE_SETS,
     Evidence,
-    align_to,
     capped_rows,
     compare_downstream,
     evaluate_downstream,
-    out_of_fold_vectors,
-    vectors_for_ids,
 )
-from entivec.tasks.metrics import task_metrics
+from entivec.tasks.evidence.metrics import task_metrics
 
 # --- helpers -----------------------------------------------------------------------------------------------------
 

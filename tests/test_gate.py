@@ -28,8 +28,11 @@ ROWS = 24_000  # enough held-out rows (7,200) for the paired interval to separat
 def stones(tmp_path_factory, empty_store):
     """One store with two versions trained on the same split: v1 on the real prices, v2 on shuffled prices."""
     from entivec.schemas.spec import load_spec
-    from entivec.tasks import registry
-    from entivec.tasks.ingest import data_fingerprint, read_source, split_rows, validate_and_clean
+    from entivec.tasks.ingest.clean import validate_and_clean
+    from entivec.tasks.ingest.fingerprint import data_fingerprint
+    from entivec.tasks.ingest.read import read_source
+    from entivec.tasks.ingest.split import split_rows
+    from entivec.tasks.lifecycle import registry
 
     home = tmp_path_factory.mktemp("gate-home")
     shutil.copy(empty_store, home / "mlflow.db")
@@ -76,7 +79,7 @@ def _real_losses() -> tuple[np.ndarray, np.ndarray]:
 
 @pytest.mark.outside
 def test_paired_bootstrap_matches_scipy_bootstrap():
-    from entivec.tasks.gate import paired_bootstrap
+    from entivec.tasks.lifecycle.checks import paired_bootstrap
 
     ref, cand = _real_losses()
     ours = paired_bootstrap(ref, cand, confidence=0.9, resamples=3000, seed=42, batch=400)
@@ -94,7 +97,7 @@ def test_paired_bootstrap_matches_scipy_bootstrap():
 
 
 def test_gain_check_margin_semantics():
-    from entivec.tasks.gate import PairedInterval, gain_check
+    from entivec.tasks.lifecycle.checks import PairedInterval, gain_check
 
     def interval(low: float, high: float) -> PairedInterval:
         return PairedInterval("reference", "candidate", 100, 10.0, 9.0, 1.0, low, high, 0.95, 1000, 0, 1000,
@@ -113,7 +116,7 @@ def test_gain_check_margin_semantics():
 
 @pytest.mark.outside
 def test_gate_passes_better_vectors_and_refuses_vectors_of_shuffled_targets(in_store):
-    from entivec.tasks.gate import run_gate
+    from entivec.tasks.lifecycle.gate import run_gate
 
     s = in_store
     common = dict(spec=s.spec, train_rows=s.train, test_rows=s.test, data_fingerprint=s.fingerprint)
@@ -147,7 +150,7 @@ def test_gate_passes_better_vectors_and_refuses_vectors_of_shuffled_targets(in_s
 
 @pytest.mark.outside
 def test_judge_cross_fitting_matches_scikit_learn_cross_val_predict(in_store):
-    from entivec.tasks.gate import judge_downstream
+    from entivec.tasks.lifecycle.gate import judge_downstream
 
     s = in_store
     rows = s.test.iloc[:1000].reset_index(drop=True)
@@ -170,7 +173,7 @@ def test_judge_cross_fitting_matches_scikit_learn_cross_val_predict(in_store):
 
 @pytest.mark.outside
 def test_order_expectation_on_gia_clarity_scale(stones):
-    from entivec.tasks.gate import expectation_check, order_projection
+    from entivec.tasks.lifecycle.checks import expectation_check, order_projection
 
     vs = stones.good.vector_set
     for axis in ("principal", "extremes"):
@@ -199,7 +202,7 @@ def test_order_expectation_on_gia_clarity_scale(stones):
 
 @pytest.mark.outside
 def test_nearer_expectation_and_missing_categories(stones):
-    from entivec.tasks.gate import expectation_check
+    from entivec.tasks.lifecycle.checks import expectation_check
 
     vs = stones.good.vector_set
     # Adjacent grades of the GIA scale against its two ends.
@@ -232,7 +235,7 @@ def _set(matrix: np.ndarray) -> VectorSet:
 
 
 def test_sanity_checks_catch_non_finite_large_and_collapsed_vectors():
-    from entivec.tasks.gate import sanity_checks
+    from entivec.tasks.lifecycle.checks import sanity_checks
 
     policy = PromotionSpec(max_norm=10.0)
     rng = np.random.default_rng(0)
@@ -261,18 +264,18 @@ def test_sanity_checks_catch_non_finite_large_and_collapsed_vectors():
 
 
 def test_rows_a_version_trained_on_are_left_out(in_store, monkeypatch):
-    from entivec.tasks import gate
+    from entivec.tasks.lifecycle import rows as gate_rows
 
     s = in_store
     leaked = pd.concat([s.test, s.train.iloc[:300]], ignore_index=True)
-    rows = gate.unseen_rows(leaked, s.spec, {"candidate": s.good}, s.fingerprint)
+    rows = gate_rows.unseen_rows(leaked, s.spec, {"candidate": s.good}, s.fingerprint)
     assert len(rows.frame) == len(s.test)
     assert not rows.frame["stone_id"].isin(s.train["stone_id"]).any()
     assert "300 held-out row(s) it trained on left out" in rows.notes["candidate"]
 
     # Without recorded ids: trusted only when the version was trained on this very data and split.
-    monkeypatch.setattr(gate, "trained_ids", lambda version: None)
-    same = gate.unseen_rows(s.test, s.spec, {"candidate": s.good}, s.fingerprint)
+    monkeypatch.setattr(gate_rows, "trained_ids", lambda version: None)
+    same = gate_rows.unseen_rows(s.test, s.spec, {"candidate": s.good}, s.fingerprint)
     assert all(c.passed for c in same.checks)
-    other = gate.unseen_rows(s.test, s.spec, {"candidate": s.good}, "another-fingerprint")
+    other = gate_rows.unseen_rows(s.test, s.spec, {"candidate": s.good}, "another-fingerprint")
     assert other.checks[0].passed is False and "may have trained on" in other.checks[0].message

@@ -51,7 +51,7 @@ def write_case(folder, drops) -> str:
 
 
 def runs_of_kind(kind: str) -> list:
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     experiment = registry.client().get_experiment_by_name(f"entivec/{NAME}")
     return registry.client().search_runs([experiment.experiment_id], filter_string=f"tags.`entivec.kind` = '{kind}'")
@@ -61,7 +61,7 @@ def test_unchanged_input_is_recorded_not_trained(
     tmp_path, entivec_home, prefect_server, run_cli, drops, registered_versions
 ):
     from entivec.flows.train import train
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     spec_path = write_case(tmp_path, drops)
     first = train(spec_path, skip_unchanged=True)  # nothing registered yet: trains
@@ -91,7 +91,7 @@ def test_unchanged_input_is_recorded_not_trained(
         "entivec.data_fingerprint"]
 
     # The run log keeps both attempts, newest first: the skip (no version), then the train run that became 1.
-    from entivec.tasks.track import run_log
+    from entivec.tasks.lifecycle.track import run_log
 
     log = run_log(NAME)
     assert log[["kind", "version", "run_id"]].values.tolist() == [
@@ -109,7 +109,7 @@ def test_incremental_retrain_stops_on_drift_and_keeps_ids_when_it_passes(
     tmp_path, entivec_home, prefect_server, run_cli, drops, registered_versions
 ):
     from entivec.flows.train import train
-    from entivec.tasks import audit, drift, registry
+    from entivec.tasks.lifecycle import audit, drift, registry
 
     spec_path = write_case(tmp_path, drops)
     first = train(spec_path, incremental=True, warm_start=True)  # no production yet: from scratch, said so
@@ -157,11 +157,11 @@ def test_incremental_retrain_stops_on_drift_and_keeps_ids_when_it_passes(
 
     # The version remembers the drop it read, so a later gate (no --spec, no --source) judges on that drop,
     # not on the spec's own first.csv.
-    from entivec.tasks import gate
+    from entivec.tasks.lifecycle import rows as gate_rows
 
-    assert client.get_model_version(NAME, "2").tags[gate.SOURCE_TAG] == str(tmp_path / "same.csv")
-    gate_spec, gate_spec_file = gate.spec_for(NAME, registry.load_version(NAME, "2"), None)
+    assert client.get_model_version(NAME, "2").tags[gate_rows.SOURCE_TAG] == str(tmp_path / "same.csv")
+    gate_spec, gate_spec_file = gate_rows.spec_for(NAME, registry.load_version(NAME, "2"), None)
     assert gate_spec.source.path == str(tmp_path / "same.csv") and gate_spec_file == spec_path
-    assert gate.spec_for(NAME, registry.load_version(NAME, "1"), None)[0].source.path == "first.csv"
-    override = gate.spec_for(NAME, registry.load_version(NAME, "2"), None, str(tmp_path / "first.csv"))[0]
+    assert gate_rows.spec_for(NAME, registry.load_version(NAME, "1"), None)[0].source.path == "first.csv"
+    override = gate_rows.spec_for(NAME, registry.load_version(NAME, "2"), None, str(tmp_path / "first.csv"))[0]
     assert override.source.path == str(tmp_path / "first.csv")

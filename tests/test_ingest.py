@@ -15,15 +15,10 @@ import yaml
 
 from entivec.schemas.spec import load_spec, spec_from_dict
 from entivec.schemas.tables import build_schema
-from entivec.tasks.ingest import (
-    InputError,
-    data_fingerprint,
-    read_source,
-    retry_on_io_only,
-    split_rows,
-    validate_and_clean,
-    write_quarantine,
-)
+from entivec.tasks.ingest.clean import validate_and_clean, write_quarantine
+from entivec.tasks.ingest.fingerprint import data_fingerprint
+from entivec.tasks.ingest.read import InputError, read_source, retry_on_io_only
+from entivec.tasks.ingest.split import split_rows
 
 
 def write_spec(folder, raw: dict):
@@ -434,7 +429,7 @@ def test_retry_condition_tells_io_trouble_from_bad_input():
 def test_ingest_task_retries_io_errors_but_not_input_errors(tmp_path, monkeypatch, prefect_server):
     from prefect import flow
 
-    from entivec.tasks import ingest as module
+    from entivec.tasks.ingest import read as module
 
     small_csv(tmp_path / "data.csv", ["s1,d1,1,10"])
     spec_path = write_spec(tmp_path, SMALL)

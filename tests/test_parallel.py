@@ -53,9 +53,10 @@ def crossfit_case(diamonds_frame, tmp_path_factory):
     """Encoded training rows, full-data vectors and the sequential out-of-fold vectors, also saved to a folder."""
     from entivec.schemas.spec import spec_from_dict
     from entivec.schemas.vocabulary import Vocabulary
-    from entivec.tasks import targets
-    from entivec.tasks.crossfit import cross_fit_vectors
-    from entivec.tasks.train import FeatureEncoder, fit_network
+    from entivec.tasks.evidence.crossfit import cross_fit_vectors
+    from entivec.tasks.train import targets
+    from entivec.tasks.train.encoder import FeatureEncoder
+    from entivec.tasks.train.trainer import fit_network
 
     spec = spec_from_dict(case_spec())
     train_rows, test_rows = diamonds_frame.iloc[:2_250], diamonds_frame.iloc[2_250:]
@@ -90,15 +91,15 @@ def crossfit_only(folder: str) -> dict[str, np.ndarray]:
     from pathlib import Path
 
     from entivec.schemas.spec import spec_from_dict
-    from entivec.tasks.crossfit import cross_fit_vectors_submitted
-    from entivec.tasks.train import EncodedInputs
+    from entivec.tasks.evidence.crossfit import cross_fit_vectors
+    from entivec.tasks.train.encoder import EncodedInputs
 
     data = np.load(Path(folder) / "case.npz")
     meta = json.loads((Path(folder) / "case.json").read_text())
     spec = spec_from_dict(meta["spec"])
     inputs = EncodedInputs(data["cat_ids"], data["dense"])
     reference = {c: data[f"ref_{c}"] for c in spec.embed_names}
-    return cross_fit_vectors_submitted(inputs, data["y"], spec, meta["cardinalities"], [3, 3], reference)
+    return cross_fit_vectors(inputs, data["y"], spec, meta["cardinalities"], [3, 3], reference)
 
 
 def _temporary_prefect_servers() -> int:
@@ -112,7 +113,8 @@ def _tasks_executed(dask_worker) -> int:
 
 
 def _downstream_scores(case, oof) -> pd.DataFrame:
-    from entivec.tasks.evaluate import compare_downstream, vectors_for_ids
+    from entivec.tasks.evidence.crossfit import vectors_for_ids
+    from entivec.tasks.evidence.downstream import compare_downstream
 
     spec, inputs = case["spec"], case["inputs"]
     test_inputs = case["encoder"].transform(case["test"])
@@ -209,7 +211,7 @@ def _comparable_metrics(run) -> dict[str, float]:
 def test_train_command_with_a_local_dask_cluster_matches_the_sequential_train(
     tmp_path, run_cli, diamonds_frame
 ):
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     spec_path = write_case(tmp_path, diamonds_frame)
     code, output = run_cli(["train", spec_path])
@@ -252,7 +254,7 @@ def test_sweep_on_dask_matches_the_sequential_sweep_and_logs_nested_runs(
 ):
     from entivec.flows.parallel import run_flow
     from entivec.flows.sweep import sweep
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     spec_path = write_case(tmp_path, diamonds_frame)
     candidates = ["spec", "clarity=2", "x2"]
@@ -284,7 +286,7 @@ def test_sweep_on_dask_matches_the_sequential_sweep_and_logs_nested_runs(
 def test_train_many_trains_two_specs_in_parallel_workers(tmp_path, entivec_home, prefect_server, diamonds_frame):
     from entivec.flows.parallel import run_flow
     from entivec.flows.sweep import train_many
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     first = write_case(tmp_path / "a", diamonds_frame, name="stones-a")
     second = write_case(tmp_path / "b", diamonds_frame, name="stones-b")
@@ -301,7 +303,7 @@ def test_train_many_trains_two_specs_in_parallel_workers(tmp_path, entivec_home,
 
 def test_out_of_fold_vectors_take_all_folds_at_once_with_the_same_result(diamonds_frame):
     from entivec.schemas.vocabulary import Vocabulary
-    from entivec.tasks.evaluate import out_of_fold_vectors
+    from entivec.tasks.evidence.crossfit import out_of_fold_vectors
 
     # Each fold's "vectors" are per-clarity statistics (mean and median log price) of that fold's rows: a real
     # fit with a known answer, so the two ways of handing folds over can be compared without a network.
@@ -341,7 +343,7 @@ def test_scheduled_train_and_promote_can_run_its_train_step_on_dask(
     from entivec.flows import parallel as parallel_module
     from entivec.flows.scheduled import train_and_promote
     from entivec.flows.train import train
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     chosen = []
     real_choice = parallel_module.task_runner

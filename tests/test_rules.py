@@ -8,8 +8,9 @@ import pytest
 
 from entivec.schemas.ledger import Ledger, LedgerMismatch
 from entivec.schemas.spec import SpecError, spec_from_dict
-from entivec.tasks import ingest
-from entivec.tasks.ingest import InputError, validate_and_clean
+from entivec.tasks.ingest import clean as cleaning
+from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.read import InputError
 
 
 def make_spec(rules=(), *, numeric=None, target=None, onehot=None, split=None):
@@ -365,14 +366,14 @@ def test_ledger_check_fires_when_counts_do_not_add_up():
 
 
 def test_a_rule_that_loses_rows_is_caught(monkeypatch):
-    real = ingest.RULES["range"]
+    real = cleaning.RULES["range"]
 
     def leaky(frame, rule, i, raw):
         outcome = real(frame, rule, i, raw)
         outcome.frame = outcome.frame.iloc[1:]  # one row vanishes without a reason
         return outcome
 
-    monkeypatch.setitem(ingest.RULES, "range", leaky)
+    monkeypatch.setitem(cleaning.RULES, "range", leaky)
     spec = make_spec([{"kind": "range", "column": "price", "max": 500}])
     with pytest.raises(LedgerMismatch, match="5 in, 3 used"):
         validate_and_clean(make_frame(price=[1.0, 2.0, 3.0, 4.0, 900.0]), spec)

@@ -49,8 +49,8 @@ def test_lookup_model_by_alias_matches_the_transformer(store):
     import mlflow
     from mlflow.exceptions import MlflowException
 
-    from entivec.tasks import registry
-    from entivec.tasks.lookup_model import UNKNOWN_RULES
+    from entivec.tasks.apply.lookup import UNKNOWN_RULES
+    from entivec.tasks.lifecycle import registry
 
     registry.client()  # points MLflow's tracking and registry at the test store
     model = mlflow.pyfunc.load_model(f"models:/{store.name}@production")

@@ -182,7 +182,7 @@ def test_stack_is_up_on_postgres(stack):
 
 def test_train_and_promote_against_the_mlflow_server(on_stack, case):
     from entivec.flows.train import train
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     outcome = train(str(case))
     assert outcome.version == "1"
@@ -202,7 +202,7 @@ def test_scheduled_deployment_runs_on_the_worker(on_stack, case):
     from prefect.client.orchestration import get_client
     from prefect.deployments import run_deployment
 
-    from entivec.tasks import audit, registry
+    from entivec.tasks.lifecycle import audit, registry
 
     deployments = case.parent / "deployments.yaml"
     deployments.write_text(yaml.safe_dump({

@@ -49,7 +49,7 @@ def write_case(folder, frame: pd.DataFrame, **overrides) -> str:
 
 def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame):
     from entivec.flows.train import train
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     spec_path = write_case(tmp_path, diamonds_frame)
     outcome = train(spec_path)
@@ -105,7 +105,7 @@ def test_failure_after_registration_leaves_no_version(
     tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch, registered_versions
 ):
     from entivec.flows import train as train_module
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
 
     def broken(point: str) -> None:
         if point == "before_move":
@@ -146,7 +146,7 @@ def test_cli_train_versions_export(tmp_path, run_cli, diamonds_frame):
 
 def test_a_run_that_fails_while_being_filled_is_closed_as_failed(entivec_home):
     # MLflow's own run statuses: a block that raises must not leave the run RUNNING.
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     c = registry.client()
     experiment = registry.experiment_for("stone-prices")

@@ -12,22 +12,9 @@ from sklearn.metrics import log_loss, mean_squared_error, roc_auc_score
 
 from entivec.schemas.spec import TrainingSpec, spec_from_dict
 from entivec.schemas.vocabulary import Vocabulary
-from entivec.tasks.train import (
-    EncodedInputs,
-    EntityNet,
-    FeatureEncoder,
-    _adam_step,
-    _loss,
-    _loss_and_grad,
-    _Passes,
-    _RowAdam,
-    count_parameters,
-    fit_network,
-    load_weights,
-    predict,
-    save_weights,
-    train_vectors,
-)
+from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder
+from entivec.tasks.train.network import EntityNet, count_parameters, load_weights, predict, save_weights
+from entivec.tasks.train.trainer import _adam_step, _loss, _loss_and_grad, _Passes, _RowAdam, fit_network, train_vectors
 
 QUIET = {"progress": False, "threads": 1}
 
@@ -395,7 +382,7 @@ def test_save_and_load_weights_round_trip(tmp_path):
 
 
 def test_default_thread_rule(monkeypatch):
-    import entivec.tasks.train as train_module
+    import entivec.tasks.train.trainer as train_module
 
     small = ([51, 2001, 50001], [3, 7, 15], 10, [128, 64])  # about 13,000 multiply-adds per row
     wide = ([51, 2001, 50001], [14, 113, 600], 10, [128, 64])  # about 103,000

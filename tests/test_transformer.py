@@ -86,7 +86,7 @@ def test_unknown_rule_sets_the_vector_of_unknown_values(store, odd, rule):
 
 
 def test_error_rule_names_the_column_and_the_values(store):
-    from entivec.tasks.lookup_model import UnknownCategoryError
+    from entivec.tasks.apply.lookup import UnknownCategoryError
 
     enc = encoder(store, unknown="error").fit(_odd_frame())  # fit learns no rows: it does not refuse them
     with pytest.raises(UnknownCategoryError) as caught:
@@ -151,7 +151,7 @@ def test_feature_names_out_and_both_output_containers(store):
 
 
 def test_fitted_pipeline_keeps_its_version_after_the_alias_moves(store, odd):
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     features = odd[["carat", "cut", "color", "clarity"]]
     target = np.log(odd["price"])
@@ -194,7 +194,7 @@ def test_tracking_uri_parameter_reaches_another_store(store, tmp_path, monkeypat
     monkeypatch.setenv("ENTIVEC_HOME", str(tmp_path / "elsewhere"))
     enc = encoder(store, tracking_uri=store.tracking_uri).fit(store.frame.head(10))
     assert enc.version_ == "1"
-    from entivec.tasks.registry import RegistryError
+    from entivec.tasks.lifecycle.registry import RegistryError
 
     with pytest.raises(RegistryError, match="no registered model named"):
         encoder(store).fit(store.frame.head(10))  # the configured (empty) store has no such model
@@ -261,8 +261,8 @@ def test_string_table_counterparts_of_the_data_checks(store):
 
 
 def test_clear_errors(store):
-    from entivec.tasks.lookup_model import CategoryTypeError
-    from entivec.tasks.registry import RegistryError
+    from entivec.tasks.apply.lookup import CategoryTypeError
+    from entivec.tasks.lifecycle.registry import RegistryError
 
     frame = store.frame.head(50)
     with pytest.raises(TypeError, match="needs a pandas DataFrame"):

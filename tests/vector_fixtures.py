@@ -63,8 +63,8 @@ def statistics_vector_set(frame: pd.DataFrame, statistic: str, previous=None):
 def register(name: str, vector_set, workdir: Path) -> str:
     """A minimal tracked run holding the vector set, registered as a new version of ``name``."""
     from entivec.schemas.spec import spec_from_dict
-    from entivec.tasks import registry
-    from entivec.tasks.track import register_version
+    from entivec.tasks.lifecycle import registry
+    from entivec.tasks.lifecycle.track import register_version
 
     folder = vector_set.save(Path(workdir) / "vector_set")
     c = registry.client()
@@ -99,7 +99,7 @@ class Registered:
 def register_two_versions(home: Path, name: str = MODEL) -> Registered:
     """Versions 1 (production) and 2 (staging) of ``name`` in the store of project folder ``home``."""
     from entivec.settings import tracking_uri
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     frame = diamonds()
     v1 = statistics_vector_set(half(frame, odd=True), "mean")

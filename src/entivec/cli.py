@@ -33,8 +33,8 @@ def _fail(message: str, code: int = EXIT_INPUT) -> None:
 def _user_errors() -> tuple[type[BaseException], ...]:
     from entivec.schemas.ledger import LedgerMismatch
     from entivec.schemas.spec import SpecError
-    from entivec.tasks.ingest import InputError
-    from entivec.tasks.registry import RegistryError
+    from entivec.tasks.ingest.read import InputError
+    from entivec.tasks.lifecycle.registry import RegistryError
 
     return (SpecError, InputError, RegistryError, LedgerMismatch)
 
@@ -133,7 +133,7 @@ def drift(
 
     Exits 2 when the data breaks the spec's drift: thresholds, as `train --incremental` would stop.
     """
-    from entivec.tasks import drift as drift_checks
+    from entivec.tasks.lifecycle import drift as drift_checks
 
     report = _run(lambda: drift_checks.drift_against(name, source, str(spec) if spec else None, alias))
     console.print(report.markdown(), highlight=False, markup=False)
@@ -177,7 +177,7 @@ def runs(
     fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
 ) -> None:
     """Every run of a model, newest first: trains, skips (no new data), drift stops, gates, sweeps."""
-    from entivec.tasks.track import run_log
+    from entivec.tasks.lifecycle.track import run_log
 
     if fmt not in ("table", "csv", "json"):
         _fail(f"--format must be table, csv or json, not {fmt!r}")
@@ -200,7 +200,7 @@ def runs(
 @app.command()
 def versions(name: Annotated[str, typer.Argument(help="Registered model name.")]) -> None:
     """List the versions of a model: aliases, creation time, data fingerprint and key metrics."""
-    from entivec.tasks import registry
+    from entivec.tasks.lifecycle import registry
 
     found = _run(lambda: registry.list_versions(name))
     aliases = _run(lambda: registry.aliases_of(name))
@@ -233,8 +233,8 @@ def export(
     out: Annotated[Path, typer.Option("--out", help="Folder to write the tables into.")],
 ) -> None:
     """Write each column's vectors as Parquet, CSV and .npy (id, category, count, is_unknown, v0…) and vocabulary."""
-    from entivec.tasks import registry
-    from entivec.tasks.export import export_vector_set
+    from entivec.tasks.apply.export import export_vector_set
+    from entivec.tasks.lifecycle import registry
 
     loaded = _run(lambda: registry.load_version(name, version))
     written = _run(lambda: export_vector_set(loaded.vector_set, out))
@@ -252,8 +252,8 @@ def demo(
     from entivec.demo import recovered_structure, write_demo
     from entivec.flows.train import train as train_flow
     from entivec.settings import project_home, tracking_uri
-    from entivec.tasks import registry
-    from entivec.tasks.export import export_vector_set
+    from entivec.tasks.apply.export import export_vector_set
+    from entivec.tasks.lifecycle import registry
 
     spec_path = write_demo(out, rows=rows)
     console.print(f"demo data and spec written to {out}/ (spec: {spec_path})")

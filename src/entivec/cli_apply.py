@@ -47,7 +47,7 @@ def register(app: typer.Typer) -> None:
 
         from entivec.cli import _fail, _run, console
         from entivec.flows.apply import apply as apply_flow
-        from entivec.tasks.lookup_model import UNKNOWN_RULES
+        from entivec.tasks.apply.lookup import UNKNOWN_RULES
 
         if alias is not None and version is not None:
             _fail("give either --alias or --version, not both")

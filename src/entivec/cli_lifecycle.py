@@ -118,7 +118,7 @@ def history(
     out: Annotated[Path | None, typer.Option("--out", help="Write to this file instead of the terminal.")] = None,
 ) -> None:
     """Every alias move of a model: when, who, why, from which version to which, the gate's verdict and figures."""
-    from entivec.tasks import audit
+    from entivec.tasks.lifecycle import audit
 
     cli = _base()
     entries = cli._run(lambda: audit.history(name))

@@ -13,7 +13,7 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils._set_output import _get_output_config
 from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, validate_data
 
-from entivec.tasks.lookup_model import (
+from entivec.tasks.apply.lookup import (
     DEFAULT_UNKNOWN,
     CategoryTypeError,
     ColumnLookup,
@@ -51,7 +51,7 @@ class VectorEncoder(TransformerMixin, BaseEstimator):
     unknown : {"unknown_row", "zeros", "mean", "error"}, default="unknown_row"
         What a value outside the vocabulary (unseen, too rare in training, or missing) gets: the trained
         unknown row, a zero vector, the frequency-weighted mean of the known vectors, or an error. The same
-        rule, implemented once in ``entivec.tasks.lookup_model``, serves the batch job and the served model.
+        rule, implemented once in ``entivec.tasks.apply.lookup``, serves the batch job and the served model.
     drop : bool, default=True
         Replace each category column by its vector components (True) or keep it before them (False).
     tracking_uri : str or None, default=None
@@ -141,7 +141,7 @@ class VectorEncoder(TransformerMixin, BaseEstimator):
 
     def fit(self, X: pd.DataFrame, y=None) -> VectorEncoder:
         """Resolve the version, load its vocabularies and vectors, and check ``X``'s category columns."""
-        from entivec.tasks import registry
+        from entivec.tasks.lifecycle import registry
 
         check_unknown_rule(self.unknown)
         if not self.model_name:

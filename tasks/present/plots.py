@@ -13,6 +13,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
 from entivec.schemas.vocabulary import Vocabulary  # noqa: E402
+from entivec.tasks.lifecycle.bundle import BundleInputs  # noqa: E402
 
 
 def _save(fig, path: Path) -> Path:
@@ -81,3 +82,14 @@ def comparison(table: pd.DataFrame, metric: str, path: Path) -> Path:
     pivot.plot.barh(ax=ax)
     ax.set(xlabel=f"{metric} on held-out rows (lower is better)", ylabel="", title="Downstream comparison")
     return _save(fig, path)
+
+
+def write_run_plots(b: BundleInputs, folder: Path) -> None:
+    """The train run's plots into ``folder/plots``: loss curves, predicted vs actual, vector maps, the comparison."""
+    plot_dir = folder / "plots"
+    plot_dir.mkdir(parents=True, exist_ok=True)
+    loss_curves(b.result.history, b.result.best_epoch, plot_dir / "loss_curves.png")
+    predicted_vs_actual(b.test_actual, b.test_predicted, b.spec.target.task, plot_dir / "predicted_vs_actual.png")
+    for col, vocab in b.vocabularies.items():
+        vector_map(vocab, b.result.vectors[col], plot_dir / f"vectors_{col}.png")
+    comparison(b.evidence.table, b.evidence.primary_metric, plot_dir / "downstream_comparison.png")

@@ -5,6 +5,7 @@ from __future__ import annotations
 import getpass
 import json
 import math
+import re
 import shutil
 from datetime import UTC, datetime
 from pathlib import Path
@@ -21,14 +22,15 @@ from prefect.transactions import get_transaction
 import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks import lookup_model, registry
-from entivec.tasks.lookup_model import signature_for
+from entivec.tasks.apply import lookup
+from entivec.tasks.apply.served import signature_for
+from entivec.tasks.lifecycle import registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
 MAX_PARAM_LENGTH = 500
 # Read by MLflow, never imported here: importing it would declare the model as a side effect.
-LOOKUP_MODEL_CODE = Path(lookup_model.__file__).with_name("lookup_model_entry.py")
+LOOKUP_MODEL_CODE = Path(lookup.__file__).with_name("lookup_model_entry.py")
 
 
 def operator() -> str:
@@ -211,3 +213,30 @@ def run_log(name: str, limit: int = 50) -> pd.DataFrame:
             "note": next((line.strip() for line in note.splitlines() if line.strip()), ""),
         })
     return pd.DataFrame(rows, columns=RUN_LOG_COLUMNS)
+
+
+# --- Prefect artifacts ----------------------------------------------------------------------------------------
+
+
+def prefect_key(text: str) -> str:
+    """A Prefect artifact key: lowercase letters, digits and dashes only."""
+    return re.sub(r"-+", "-", re.sub(r"[^a-z0-9-]", "-", text.lower())).strip("-")[:200] or "entivec"
+
+
+def link_in_prefect(key: str, link: str, link_text: str, description: str) -> None:
+    """A link artifact in the current Prefect flow or task run; outside a run there is nowhere to attach it."""
+    from prefect.artifacts import create_link_artifact
+    from prefect.context import FlowRunContext, TaskRunContext
+
+    if FlowRunContext.get() is None and TaskRunContext.get() is None:
+        return
+    create_link_artifact(link=link, link_text=link_text, key=prefect_key(key), description=description)
+
+
+def markdown_in_prefect(key: str, text: str, description: str) -> None:
+    from prefect.artifacts import create_markdown_artifact
+    from prefect.context import FlowRunContext, TaskRunContext
+
+    if FlowRunContext.get() is None and TaskRunContext.get() is None:
+        return
+    create_markdown_artifact(markdown=text, key=prefect_key(key), description=description)

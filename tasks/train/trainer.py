@@ -1,8 +1,7 @@
-"""Train entity vectors: a small network with one embedding table per categorical column, on CPU, seeded.
+"""Train entity vectors on CPU, seeded: the loop, its optimizers and early stopping, in one file.
 
-The network is the classic entity-embedding regressor/classifier: each embedded column looks up its row in
-its own table, the looked-up vectors are concatenated with the standardized numerics and the one-hot
-columns, and dense ReLU layers map that to one output. After training, the tables are the vectors.
+Longer than 500 lines because the whole training step is kept in one file on purpose: what runs once per
+batch (gather, hand-written dense passes, the two Adam variants, early stopping) reads top to bottom here.
 
 Speed comes from the loop's shape (each point measured on the benchmark table, benchmarks/bench_trainer.py):
 
@@ -28,261 +27,31 @@ people who live or shop there; check downstream use before relying on them.
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import sys
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass, field
-from pathlib import Path
+from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 import torch
 import torch.nn.functional as F
 from prefect import task
 from prefect.cache_policies import NONE as NO_CACHE
 
-from entivec.schemas.spec import Spec, TrainingSpec
-from entivec.schemas.vocabulary import Vocabulary, category_strings
+from entivec.schemas.spec import TrainingSpec
+from entivec.tasks.train.encoder import EncodedInputs
+from entivec.tasks.train.network import EntityNet
 
-WEIGHTS_FORMAT = "entivec.entity_net/1"
 # Adam's published defaults (Kingma & Ba, "Adam: A Method for Stochastic Optimization", ICLR 2015),
 # the same as torch.optim.Adam's.
 ADAM_BETAS = (0.9, 0.999)
 ADAM_EPS = 1e-8
-# Embedding rows start small so that the dense layers see little noise from untrained categories
-# (common practice, no source).
-EMBEDDING_INIT_STD = 0.05
+
 _EVAL_SLICE = 65_536
 _PROGRESS_EVERY = 32  # batches between progress-bar updates
-
-
-# --- encoding a cleaned frame into network inputs ----------------------------------------------------------------
-
-
-@dataclass
-class EncodedInputs:
-    """Network inputs for n rows."""
-
-    cat_ids: np.ndarray  # int64 (n, k): vocabulary ids per embedded column, in spec.embed_names order
-    dense: np.ndarray  # float32 (n, d): standardized numerics, then one-hot indicator columns
-
-    def __post_init__(self) -> None:
-        self.cat_ids = np.asarray(self.cat_ids, dtype=np.int64)
-        self.dense = np.asarray(self.dense, dtype=np.float32)
-        if self.cat_ids.ndim != 2 or self.dense.ndim != 2:
-            raise ValueError("EncodedInputs: cat_ids and dense must both be 2-D arrays")
-        if len(self.cat_ids) != len(self.dense):
-            raise ValueError(f"EncodedInputs: {len(self.cat_ids)} rows of ids but {len(self.dense)} dense rows")
-
-    def __len__(self) -> int:
-        return len(self.cat_ids)
-
-    def take(self, rows: np.ndarray) -> EncodedInputs:
-        """The inputs of the given rows (positions or a boolean mask)."""
-        return EncodedInputs(self.cat_ids[rows], self.dense[rows])
-
-
-@dataclass
-class FeatureEncoder:
-    """Fitted on training rows only; turns a cleaned frame into :class:`EncodedInputs`.
-
-    - embedded columns: vocabulary ids (unknown, rare or missing -> id 0);
-    - numeric columns: standardized with the training mean and standard deviation (population, ddof=0);
-      a constant column gets a standard deviation of 1; a missing value becomes 0, i.e. the training mean;
-    - one-hot columns: one indicator per level observed on the training rows, in sorted order; a level not
-      seen in training, or a missing value, gives all zeros.
-    """
-
-    embed_columns: list[str]
-    vocabularies: dict[str, Vocabulary]
-    numeric_columns: list[str]
-    numeric_mean: list[float]
-    numeric_std: list[float]
-    onehot_levels: dict[str, list[str]] = field(default_factory=dict)
-
-    @classmethod
-    def fit(cls, frame: pd.DataFrame, spec: Spec, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
-        missing = [c for c in spec.feature_columns if c not in frame.columns]
-        if missing:
-            raise KeyError(f"feature encoder: the frame lacks column(s) {missing}")
-        absent = [c for c in spec.embed_names if c not in vocabularies]
-        if absent:
-            raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
-        means, stds = [], []
-        for name in spec.numeric_names:
-            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
-            finite = values[np.isfinite(values)]
-            mean = float(finite.mean()) if finite.size else 0.0
-            std = float(finite.std()) if finite.size else 0.0
-            means.append(mean)
-            stds.append(std if std > 0 and math.isfinite(std) else 1.0)
-        levels = {}
-        for name in spec.onehot_names:
-            observed = category_strings(frame[name]).dropna().unique()
-            levels[name] = sorted(str(v) for v in observed)
-        return cls(
-            embed_columns=list(spec.embed_names),
-            vocabularies={c: vocabularies[c] for c in spec.embed_names},
-            numeric_columns=list(spec.numeric_names),
-            numeric_mean=means,
-            numeric_std=stds,
-            onehot_levels=levels,
-        )
-
-    @property
-    def dense_names(self) -> list[str]:
-        """Names of the dense input columns, in order: numerics, then ``column=level`` indicators."""
-        names = list(self.numeric_columns)
-        for column, levels in self.onehot_levels.items():
-            names.extend(f"{column}={level}" for level in levels)
-        return names
-
-    def transform(self, frame: pd.DataFrame) -> EncodedInputs:
-        n = len(frame)
-        cat_ids = np.zeros((n, len(self.embed_columns)), dtype=np.int64)
-        for j, name in enumerate(self.embed_columns):
-            cat_ids[:, j] = self.vocabularies[name].encode(frame[name])
-        dense = np.zeros((n, len(self.dense_names)), dtype=np.float32)
-        for j, name in enumerate(self.numeric_columns):
-            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
-            scaled = (values - self.numeric_mean[j]) / self.numeric_std[j]
-            dense[:, j] = np.where(np.isfinite(scaled), scaled, 0.0)
-        start = len(self.numeric_columns)
-        for name, levels in self.onehot_levels.items():
-            positions = pd.Index(levels, dtype="string").get_indexer(category_strings(frame[name]))
-            rows = np.flatnonzero(positions >= 0)
-            dense[rows, start + positions[rows]] = 1.0
-            start += len(levels)
-        return EncodedInputs(cat_ids, dense)
-
-    def to_dict(self) -> dict:
-        """JSON-safe state; the vocabularies are stored on their own and passed back to :meth:`from_dict`."""
-        return {
-            "embed_columns": list(self.embed_columns),
-            "numeric_columns": list(self.numeric_columns),
-            "numeric_mean": [float(v) for v in self.numeric_mean],
-            "numeric_std": [float(v) for v in self.numeric_std],
-            "onehot_levels": {k: list(v) for k, v in self.onehot_levels.items()},
-        }
-
-    @classmethod
-    def from_dict(cls, data: dict, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
-        columns = list(data["embed_columns"])
-        absent = [c for c in columns if c not in vocabularies]
-        if absent:
-            raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
-        return cls(
-            embed_columns=columns,
-            vocabularies={c: vocabularies[c] for c in columns},
-            numeric_columns=list(data["numeric_columns"]),
-            numeric_mean=[float(v) for v in data["numeric_mean"]],
-            numeric_std=[float(v) for v in data["numeric_std"]],
-            onehot_levels={k: list(v) for k, v in data["onehot_levels"].items()},
-        )
-
-
-# --- the network ------------------------------------------------------------------------------------------------
-
-
-class EntityNet(torch.nn.Module):
-    """Embedding tables + dense ReLU layers + one output.
-
-    ``forward`` returns predictions on the scale the network was trained on: the transformed target for
-    regression (``target_scale * raw + target_shift``, both buffers set by the trainer), logits for binary.
-    """
-
-    def __init__(
-        self, cardinalities: list[int], sizes: list[int], n_dense: int, hidden: list[int], dropout: float = 0.0
-    ) -> None:
-        super().__init__()
-        if len(cardinalities) != len(sizes):
-            raise ValueError(f"{len(cardinalities)} cardinalities but {len(sizes)} sizes")
-        if any(int(c) < 1 for c in cardinalities) or any(int(s) < 1 for s in sizes):
-            raise ValueError("cardinalities and sizes must be at least 1")
-        self.cardinalities = [int(c) for c in cardinalities]
-        self.sizes = [int(s) for s in sizes]
-        self.n_dense = int(n_dense)
-        self.hidden = [int(h) for h in hidden]
-        self.dropout = float(dropout)
-        self.embeddings = torch.nn.ModuleList(
-            torch.nn.Embedding(c, s) for c, s in zip(self.cardinalities, self.sizes, strict=True)
-        )
-        for table in self.embeddings:
-            torch.nn.init.normal_(table.weight, std=EMBEDDING_INIT_STD)
-        width = sum(self.sizes) + self.n_dense
-        layers = []
-        for units in self.hidden:
-            layers.append(torch.nn.Linear(width, units))
-            width = units
-        self.layers = torch.nn.ModuleList(layers)
-        self.output = torch.nn.Linear(width, 1)
-        self.register_buffer("target_shift", torch.zeros(()))
-        self.register_buffer("target_scale", torch.ones(()))
-
-    def architecture(self) -> dict:
-        return {
-            "cardinalities": self.cardinalities,
-            "sizes": self.sizes,
-            "n_dense": self.n_dense,
-            "hidden": self.hidden,
-            "dropout": self.dropout,
-        }
-
-    def embed(self, cat_ids: torch.Tensor) -> torch.Tensor:
-        """The concatenated vectors of each row's categories, shape (n, sum(sizes))."""
-        parts = [F.embedding(cat_ids[:, j], table.weight) for j, table in enumerate(self.embeddings)]
-        return torch.cat(parts, 1) if parts else cat_ids.new_zeros((len(cat_ids), 0), dtype=torch.float32)
-
-    def head(self, x: torch.Tensor) -> torch.Tensor:
-        """Dense layers on concatenated inputs; the raw output (standardized scale or logit), shape (n,)."""
-        for layer in self.layers:
-            x = F.relu(layer(x), inplace=True)  # the linear output is not needed by its backward
-            if self.dropout > 0:
-                x = F.dropout(x, self.dropout, self.training)
-        return self.output(x).squeeze(1)
-
-    def forward(self, cat_ids: torch.Tensor, dense: torch.Tensor) -> torch.Tensor:
-        raw = self.head(torch.cat([self.embed(cat_ids), dense], 1))
-        return raw * self.target_scale + self.target_shift
-
-    def vectors(self) -> list[np.ndarray]:
-        """One float32 matrix per embedded column, shape (cardinality, size); row = vocabulary id."""
-        return [table.weight.detach().numpy().astype(np.float32, copy=True) for table in self.embeddings]
-
-
-def count_parameters(model: torch.nn.Module) -> int:
-    """Trainable numbers in a model (buffers such as the target scale are not counted)."""
-    return int(sum(p.numel() for p in model.parameters()))
-
-
-def save_weights(model: EntityNet, path: str | Path) -> None:
-    """Save weights as safetensors (never pickle); the architecture travels in the file's metadata."""
-    from safetensors.torch import save_file
-
-    tensors = {name: t.detach().contiguous().clone() for name, t in model.state_dict().items()}
-    metadata = {"format": WEIGHTS_FORMAT, "architecture": json.dumps(model.architecture())}
-    save_file(tensors, str(path), metadata=metadata)
-
-
-def load_weights(path: str | Path) -> EntityNet:
-    """Rebuild an :class:`EntityNet` from a file written by :func:`save_weights`."""
-    from safetensors import safe_open
-    from safetensors.torch import load_file
-
-    with safe_open(str(path), framework="pt") as handle:
-        metadata = handle.metadata() or {}
-    if metadata.get("format") != WEIGHTS_FORMAT:
-        raise ValueError(f"{path}: not an entivec network file (format {metadata.get('format')!r})")
-    arch = json.loads(metadata["architecture"])
-    model = EntityNet(arch["cardinalities"], arch["sizes"], arch["n_dense"], arch["hidden"], arch["dropout"])
-    model.load_state_dict(load_file(str(path)))
-    model.eval()
-    return model
-
 
 # --- optimisation ------------------------------------------------------------------------------------------------
 
@@ -771,20 +540,6 @@ def _train_loop(
         model.load_state_dict(best_state)
     return history, best_epoch, best_loss
 
-
-def predict(model: EntityNet, inputs: EncodedInputs, task: str, batch_size: int = 65536) -> np.ndarray:
-    """Regression: predictions on the transformed scale; binary: probabilities."""
-    model.eval()
-    ids = torch.from_numpy(np.ascontiguousarray(inputs.cat_ids, dtype=np.int64))
-    dense = torch.from_numpy(np.ascontiguousarray(inputs.dense, dtype=np.float32))
-    out = np.empty(len(inputs), dtype=np.float64)
-    with torch.no_grad():
-        for start in range(0, len(inputs), batch_size):
-            pred = model(ids[start : start + batch_size], dense[start : start + batch_size])
-            if task == "binary":
-                pred = torch.sigmoid(pred)
-            out[start : start + batch_size] = pred.numpy()
-    return out
 
 
 # The Prefect task is the plain function itself; no retries, since nothing in it is I/O that could heal.

@@ -8,8 +8,6 @@ Prefect run, linked as Prefect artifacts.
 
 from __future__ import annotations
 
-import base64
-import html
 import io
 import json
 import re
@@ -17,7 +15,6 @@ import tempfile
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
 import matplotlib
@@ -34,127 +31,23 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
-from entivec.tasks import audit, registry  # noqa: E402
-from entivec.tasks.compare import ColumnComparison  # noqa: E402
-from entivec.tasks.gate import GateResult, PairedInterval, loss_name, run_file  # noqa: E402
-from entivec.tasks.track import now_iso, operator  # noqa: E402
+from entivec.tasks.lifecycle import audit, registry  # noqa: E402
+from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
+from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
+from entivec.tasks.lifecycle.gate import GateResult
+from entivec.tasks.lifecycle.registry import run_file  # noqa: E402
+from entivec.tasks.lifecycle.track import (  # noqa: E402
+    link_in_prefect,  # noqa: E402
+    now_iso,
+    operator,
+)
+from entivec.tasks.present.html import esc, facts, image, markdown, page, png_bytes, table  # noqa: E402
 
 GATE_FOLDER = "gate"
 _METRIC_UNSAFE = re.compile(r"[^A-Za-z0-9_.\- /]")  # characters MLflow refuses in a metric name
 REPORT_FOLDER = "report"
 VERSION_REPORT = "version_report.html"
 GATE_REPORT = "gate_report.html"
-CAUTION = (
-    "Vectors of places or groups (postcodes, stores, depots, ...) can stand in for protected attributes of the "
-    "people behind them; check what they encode before they feed decisions about people."
-)
-
-_CSS = """
-body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;margin:2em auto;max-width:1100px;
-color:#1d232a;line-height:1.45;padding:0 1em}
-h1{font-size:1.6em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}h2{font-size:1.25em;margin-top:1.8em}
-h3{font-size:1.05em}table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
-th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top}
-th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
-.pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
-.verdict{font-size:1.15em;padding:.5em .8em;border-radius:6px;display:inline-block}
-.verdict.pass{background:#dafbe1}.verdict.fail{background:#ffebe9}
-img{max-width:100%;border:1px solid #eaeef2;margin:.4em 0}.muted{color:#57606a;font-size:.9em}
-.caution{background:#fff8c5;border:1px solid #d4a72c;padding:.6em .8em;border-radius:6px}
-pre{background:#f6f8fa;padding:.6em;overflow-x:auto}
-"""
-
-
-# --- building blocks --------------------------------------------------------------------------------------------
-
-
-def esc(value: Any) -> str:
-    return html.escape("" if value is None else str(value))
-
-
-def png_bytes(fig) -> bytes:
-    buffer = io.BytesIO()
-    fig.tight_layout()
-    fig.savefig(buffer, format="png", dpi=100)
-    plt.close(fig)
-    return buffer.getvalue()
-
-
-def image(data: bytes, alt: str) -> str:
-    return f'<img alt="{esc(alt)}" src="data:image/png;base64,{base64.b64encode(data).decode("ascii")}">'
-
-
-def _cell(value: Any) -> str:
-    if isinstance(value, (float, np.floating)):
-        text = "" if not np.isfinite(value) else f"{value:.6g}"
-        return f'<td class="num">{text}</td>'
-    if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
-        return f'<td class="num">{value}</td>'
-    if isinstance(value, str) and value in ("pass", "FAIL", "info"):
-        return f'<td class="{ {"pass": "pass", "FAIL": "fail", "info": "info"}[value] }">{value}</td>'
-    return f"<td>{esc(value)}</td>"
-
-
-def table(frame: pd.DataFrame) -> str:
-    if frame is None or frame.empty:
-        return '<p class="muted">(nothing to show)</p>'
-    head = "".join(f"<th>{esc(c)}</th>" for c in frame.columns)
-    body = "".join("<tr>" + "".join(_cell(v) for v in row) + "</tr>" for row in frame.itertuples(index=False))
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
-
-
-def markdown(text: str) -> str:
-    """The small part of Markdown our summaries use: headings, bullet lists, paragraphs, `code`, **bold**."""
-    out, items, para = [], [], []
-
-    def inline(s: str) -> str:
-        s = esc(s)
-        s = re.sub(r"`([^`]+)`", r"<code>\1</code>", s)
-        return re.sub(r"\*\*([^*]+)\*\*", r"<strong>\1</strong>", s)
-
-    def flush() -> None:
-        if items:
-            out.append("<ul>" + "".join(f"<li>{inline(i)}</li>" for i in items) + "</ul>")
-            items.clear()
-        if para:
-            out.append(f"<p>{inline(' '.join(para))}</p>")
-            para.clear()
-
-    for line in text.splitlines():
-        stripped = line.strip()
-        heading = re.match(r"^(#{1,6})\s+(.*)$", stripped)
-        if heading:
-            flush()
-            level = min(len(heading.group(1)) + 2, 6)  # the page's own h1/h2 stay above
-            out.append(f"<h{level}>{inline(heading.group(2))}</h{level}>")
-        elif stripped.startswith(("- ", "* ")):
-            if para:
-                flush()
-            items.append(stripped[2:])
-        elif not stripped:
-            flush()
-        else:
-            if items:
-                flush()
-            para.append(stripped)
-    flush()
-    return "\n".join(out)
-
-
-def page(title: str, body: list[str]) -> str:
-    stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    return (
-        f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{esc(title)}</title>'
-        f"<style>{_CSS}</style></head><body><h1>{esc(title)}</h1>" + "\n".join(body)
-        + f'<p class="caution">{esc(CAUTION)}</p><p class="muted">Written by entivec at {stamp}.</p></body></html>'
-    )
-
-
-def facts(pairs: list[tuple[str, Any]]) -> str:
-    rows = "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in pairs if v not in (None, ""))
-    return f"<table>{rows}</table>"
-
-
 # --- plots ------------------------------------------------------------------------------------------------------
 
 
@@ -471,30 +364,6 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
 @task(name="publish-version-report", cache_policy=NO_CACHE, retries=1)
 def publish_version_report_task(name: str, version: str, out: str | None = None) -> PublishedReport:
     return publish_version_report(name, version, out)
-
-
-def prefect_key(text: str) -> str:
-    """A Prefect artifact key: lowercase letters, digits and dashes only."""
-    return re.sub(r"-+", "-", re.sub(r"[^a-z0-9-]", "-", text.lower())).strip("-")[:200] or "entivec"
-
-
-def link_in_prefect(key: str, link: str, link_text: str, description: str) -> None:
-    """A link artifact in the current Prefect flow or task run; outside a run there is nowhere to attach it."""
-    from prefect.artifacts import create_link_artifact
-    from prefect.context import FlowRunContext, TaskRunContext
-
-    if FlowRunContext.get() is None and TaskRunContext.get() is None:
-        return
-    create_link_artifact(link=link, link_text=link_text, key=prefect_key(key), description=description)
-
-
-def markdown_in_prefect(key: str, text: str, description: str) -> None:
-    from prefect.artifacts import create_markdown_artifact
-    from prefect.context import FlowRunContext, TaskRunContext
-
-    if FlowRunContext.get() is None and TaskRunContext.get() is None:
-        return
-    create_markdown_artifact(markdown=text, key=prefect_key(key), description=description)
 
 
 # --- the comparison of two versions -----------------------------------------------------------------------------

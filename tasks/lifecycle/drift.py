@@ -1,5 +1,4 @@
-"""Incremental retraining: a profile of each version's training data, drift of a new drop, and skipping known input.
-
+"""
 Profile. Every train run stores ``data/profile.json``: the coarse type of every column as read, the spec's role
 of each column, and per feature column what its training rows looked like. Embedded columns point at their
 vocabulary (it already holds the category counts); one-hot columns keep their category counts; numeric columns
@@ -33,163 +32,38 @@ holds the drift report. They never touch the registry: no version, no alias move
 from __future__ import annotations
 
 import json
-import math
-import tempfile
 from dataclasses import asdict, dataclass, field
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
-from mlflow.entities.model_registry import ModelVersion
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-import entivec
 from entivec.schemas.spec import Spec, SpecError, load_spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary, category_strings
-from entivec.settings import project_home
-from entivec.tasks import registry
-from entivec.tasks.gate import run_file, version_spec
-from entivec.tasks.ingest import BOOKKEEPING, InputError, data_fingerprint, read_source, validate_and_clean
-from entivec.tasks.track import now_iso, operator
+from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.fingerprint import data_fingerprint
+from entivec.tasks.ingest.read import BOOKKEEPING, InputError, read_source
+from entivec.tasks.lifecycle import registry
+from entivec.tasks.lifecycle.profile import (
+    EPSILON,
+    FINGERPRINT_ARTIFACT,
+    PROFILE_ARTIFACT,
+    PROFILE_FORMAT,
+    PSI_READING,
+    column_roles,
+    numbers,
+    psi,
+    psi_reading,
+    value_kind,
+)
+from entivec.tasks.lifecycle.registry import run_file, version_spec
+from entivec.tasks.lifecycle.track import now_iso
 
-PROFILE_FORMAT = "entivec.data_profile/1"
-PROFILE_ARTIFACT = "data/profile.json"
-FINGERPRINT_ARTIFACT = "data/fingerprint.json"
 REPORT_FOLDER = "drift"
-EPSILON = 1e-4
-STOPPED_KIND = "train-stopped"
-SKIPPED_KIND = "train-skipped"
-MISSING_BIN = "(missing)"
-OTHER_BIN = "(other known categories)"
-# Common practice, no source: how PSI values are usually read.
-PSI_STABLE, PSI_MAJOR = 0.1, 0.25
-PSI_READING = "PSI below 0.1 reads as stable, 0.1-0.25 as a moderate shift, above 0.25 as a major shift " \
-              "(common practice, no source)"
-
-
-# --- the index itself -------------------------------------------------------------------------------------------
-
-
-def psi(expected: Any, actual: Any, epsilon: float = EPSILON) -> float:
-    """Population stability index of two binned distributions: counts or shares over the same bins, same order.
-
-    ``expected`` is the reference (production's training rows), ``actual`` the new data. Bins empty on both sides
-    are dropped; a share of 0 on one side is raised to ``epsilon`` and the shares renormalised.
-    """
-    e = np.asarray(expected, dtype="float64").ravel()
-    a = np.asarray(actual, dtype="float64").ravel()
-    if e.shape != a.shape:
-        raise ValueError(f"psi needs the same bins on both sides, got {e.size} and {a.size}")
-    if (e < 0).any() or (a < 0).any() or not (np.isfinite(e).all() and np.isfinite(a).all()):
-        raise ValueError("psi needs finite, non-negative counts or shares")
-    keep = (e > 0) | (a > 0)
-    e, a = e[keep], a[keep]
-    if e.sum() == 0 or a.sum() == 0:
-        raise ValueError("psi needs at least one row on each side")
-    e, a = np.maximum(e / e.sum(), epsilon), np.maximum(a / a.sum(), epsilon)
-    e, a = e / e.sum(), a / a.sum()
-    return float(np.sum((a - e) * np.log(a / e)))
-
-
-def psi_reading(value: float | None) -> str:
-    if value is None or not math.isfinite(value):
-        return "not profiled"
-    if value < PSI_STABLE:
-        return "stable"
-    return "moderate" if value <= PSI_MAJOR else "major"
-
-
-# --- the profile written at training ----------------------------------------------------------------------------
-
-
-def value_kind(series: pd.Series) -> str:
-    """A column's coarse type as read: number, boolean, datetime or text (int and float are one kind)."""
-    if pd.api.types.is_bool_dtype(series):
-        return "boolean"
-    if pd.api.types.is_numeric_dtype(series):
-        return "number"
-    if pd.api.types.is_datetime64_any_dtype(series):
-        return "datetime"
-    return "text"
-
-
-def column_roles(spec: Spec) -> dict[str, str]:
-    """Each column the spec names, with its role."""
-    roles = {spec.id_column: "id", spec.target.column: "target"}
-    roles |= {c: "embed" for c in spec.embed_names}
-    roles |= {c: "onehot" for c in spec.onehot_names}
-    roles |= {c: "numeric" for c in spec.numeric_names}
-    if spec.split.time_column:
-        roles.setdefault(spec.split.time_column, "time")
-    return roles
-
-
-def _numbers(values: pd.Series) -> np.ndarray:
-    out = pd.to_numeric(values, errors="coerce")
-    return np.asarray(out.to_numpy(dtype="float64", na_value=np.nan), dtype="float64")
-
-
-def numeric_profile(values: pd.Series, bins: int) -> dict[str, Any]:
-    """Quantile bin edges of the values, rows per bin and missing rows; bins are right-closed, ends open."""
-    x = _numbers(values)
-    present = np.isfinite(x)
-    finite = x[present]
-    if len(finite):
-        # Tied quantiles (a value that fills several bins) collapse into one edge.
-        edges = np.unique(np.quantile(finite, np.linspace(0, 1, bins + 1)[1:-1]))
-    else:
-        edges = np.zeros(0)
-    counts = np.bincount(np.searchsorted(edges, finite, side="left"), minlength=len(edges) + 1)
-    return {
-        "kind": "numeric",
-        "rows": int(len(x)),
-        "missing": int((~present).sum()),
-        "edges": [float(v) for v in edges],
-        "counts": [int(v) for v in counts],
-        "min": float(finite.min()) if len(finite) else None,
-        "max": float(finite.max()) if len(finite) else None,
-        "mean": float(finite.mean()) if len(finite) else None,
-    }
-
-
-def category_profile(values: pd.Series) -> dict[str, Any]:
-    strings = category_strings(values)
-    counts = strings.value_counts(dropna=True)
-    return {
-        "kind": "categorical",
-        "rows": int(len(strings)),
-        "missing": int(strings.isna().sum()),
-        "counts": {str(k): int(v) for k, v in counts.items()},
-    }
-
-
-def data_profile(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
-    """The profile of the rows a version trains on (``rows``), with the types of every column as read (``raw``)."""
-    columns: dict[str, dict[str, Any]] = {}
-    for name in spec.embed_names:
-        strings = category_strings(rows[name])
-        columns[name] = {"kind": "categorical", "rows": int(len(strings)), "missing": int(strings.isna().sum()),
-                         "counts_in": "vocabulary"}
-    for name in spec.onehot_names:
-        columns[name] = category_profile(rows[name])
-    for name in [*spec.numeric_names, spec.target.column]:
-        columns[name] = numeric_profile(rows[name], spec.drift.numeric_bins)
-    return {
-        "format": PROFILE_FORMAT,
-        "rows": int(len(rows)),
-        "data_columns": {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING},
-        "roles": column_roles(spec),
-        "columns": columns,
-    }
-
-
-@task(name="profile-data", cache_policy=NO_CACHE)
-def data_profile_task(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
-    return data_profile(raw, rows, spec)
 
 
 # --- what production trained on ---------------------------------------------------------------------------------
@@ -387,7 +261,7 @@ def _categorical_drift(col: ColumnDrift, known: pd.Series, known_missing: int, k
 
 
 def _numeric_drift(col: ColumnDrift, profiled: dict[str, Any], drop: pd.Series) -> None:
-    x = _numbers(drop)
+    x = numbers(drop)
     present = np.isfinite(x)
     edges = np.asarray(profiled["edges"], dtype="float64")
     counts = np.bincount(np.searchsorted(edges, x[present], side="left"), minlength=len(edges) + 1)
@@ -529,81 +403,11 @@ def write_report(report: DriftReport, folder: Path) -> Path:
 
 def publish_in_prefect(report: DriftReport) -> None:
     """The report as a Prefect markdown artifact of the current run (one key per model, so runs line up)."""
-    from entivec.tasks.report import markdown_in_prefect
+    from entivec.tasks.lifecycle.track import markdown_in_prefect
 
     markdown_in_prefect(f"{report.name}-drift", report.markdown(),
                         f"Drift of new {report.name} data against {report.against_alias} version "
                         f"{report.against_version}: {'passed' if report.passed else 'stopped'}")
-
-
-# --- outcomes that train nothing --------------------------------------------------------------------------------
-
-
-def record_outcome_run(spec: Spec, kind: str, fingerprint_sha: str, note: str, tags: dict[str, str],
-                       report: DriftReport | None = None) -> str:
-    """An MLflow run in the model's experiment that records why nothing was trained; returns its id."""
-    c = registry.client()
-    run = c.create_run(
-        registry.experiment_for(spec.name),
-        run_name=f"{kind} {spec.name} {datetime.now(UTC):%Y-%m-%d %H:%M}",
-        tags={
-            "mlflow.user": operator(),
-            "mlflow.source.name": "entivec train",
-            "mlflow.note.content": note,
-            f"{registry.TAG_PREFIX}kind": kind,
-            f"{registry.TAG_PREFIX}data_fingerprint": fingerprint_sha,
-            f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(),
-            f"{registry.TAG_PREFIX}code_version": entivec.__version__,
-            **{k: v[:4900] for k, v in tags.items()},
-        },
-    )
-    run_id = run.info.run_id
-    with registry.ending_run(c, run_id):
-        if report is not None:
-            project_home().mkdir(parents=True, exist_ok=True)
-            with tempfile.TemporaryDirectory(prefix="drift-", dir=project_home()) as scratch:
-                c.log_artifacts(run_id, str(write_report(report, Path(scratch))), REPORT_FOLDER)
-            c.log_metric(run_id, "drift_max_psi", report.largest("psi"))
-            c.log_metric(run_id, "drift_max_new_category_share", report.largest("new_category_share"))
-    return run_id
-
-
-@task(name="record-drift-stop", cache_policy=NO_CACHE)
-def record_stop_task(spec: Spec, report: DriftReport, fingerprint_sha: str) -> str:
-    """Record a retrain stopped by drift (no retries: a second record would be a second run)."""
-    return record_outcome_run(
-        spec, STOPPED_KIND, fingerprint_sha, report.stop_message(),
-        {f"{registry.TAG_PREFIX}stop_reason": "; ".join(report.breaches),
-         f"{registry.TAG_PREFIX}against_version": report.against_version},
-        report,
-    )
-
-
-def latest_same_input(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
-    """The latest registered version when it was trained on this very data with this spec, else None."""
-    try:
-        versions = registry.list_versions(name)
-    except registry.RegistryError:
-        return None
-    if not versions:
-        return None
-    tags = versions[0].tags or {}
-    same = (tags.get(f"{registry.TAG_PREFIX}data_fingerprint") == fingerprint_sha
-            and tags.get(f"{registry.TAG_PREFIX}spec_hash") == spec_hash)
-    return versions[0] if same else None
-
-
-@task(name="latest-same-input", retries=2, retry_delay_seconds=2)
-def latest_same_input_task(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
-    return latest_same_input(name, fingerprint_sha, spec_hash)
-
-
-@task(name="record-no-new-data", cache_policy=NO_CACHE)
-def record_skip_task(spec: Spec, version: str, fingerprint_sha: str) -> str:
-    note = (f"no new data: the latest version of {spec.name} (version {version}) was trained on this very data "
-            "(same data fingerprint) with this spec (same spec hash); nothing was trained")
-    return record_outcome_run(spec, SKIPPED_KIND, fingerprint_sha, note,
-                              {f"{registry.TAG_PREFIX}same_as_version": str(version)})
 
 
 # --- starting from production -----------------------------------------------------------------------------------

@@ -11,11 +11,12 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import mlflow
+import yaml
 from mlflow.entities.model_registry import ModelVersion
 from mlflow.exceptions import MlflowException
 from mlflow.tracking import MlflowClient
 
-from entivec.schemas.spec import MODEL_NAME_PATTERN
+from entivec.schemas.spec import MODEL_NAME_PATTERN, Spec, SpecError, spec_from_dict
 from entivec.schemas.vector_set import VectorSet
 from entivec.settings import artifact_root, project_home, tracking_uri
 
@@ -169,3 +170,29 @@ def set_alias(name: str, alias: str, version: str) -> None:
     """Point ``alias`` at ``version``. (Audited moves for people go through the lifecycle flows.)"""
     check_alias(alias)
     client().set_registered_model_alias(name, alias, str(version))
+
+
+def run_file(run_id: str, artifact: str) -> Path | None:
+    """A file of a run's artifacts, downloaded once into the project's cache (run artifacts do not change)."""
+    key = "".join(ch if ch.isalnum() else "_" for ch in tracking_uri())[-80:]
+    target = project_home() / "cache" / key / "runs" / run_id
+    local = target / artifact
+    if local.exists():
+        return local
+    target.mkdir(parents=True, exist_ok=True)
+    try:
+        return Path(mlflow.artifacts.download_artifacts(
+            run_id=run_id, artifact_path=artifact, dst_path=str(target), tracking_uri=tracking_uri()))
+    except (MlflowException, OSError):
+        return None
+
+
+def version_spec(version: LoadedVersion) -> Spec | None:
+    """The spec (as resolved) a version was trained with, from its run."""
+    path = run_file(version.run_id, "spec.resolved.yaml")
+    if path is None or not path.exists():
+        return None
+    try:
+        return spec_from_dict(yaml.safe_load(path.read_text(encoding="utf-8")), str(path))
+    except SpecError:
+        return None  # written by an older spec model; treated as unknown

@@ -14,11 +14,12 @@ from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
-from entivec.tasks import plots
-from entivec.tasks.evaluate import Evidence
-from entivec.tasks.ingest import write_quarantine
-from entivec.tasks.track import write_spec_copy
-from entivec.tasks.train import FeatureEncoder, TrainResult, save_weights
+from entivec.tasks.evidence.downstream import Evidence
+from entivec.tasks.ingest.clean import write_quarantine
+from entivec.tasks.lifecycle.track import write_spec_copy
+from entivec.tasks.train.encoder import FeatureEncoder
+from entivec.tasks.train.network import save_weights
+from entivec.tasks.train.trainer import TrainResult
 
 
 @dataclass
@@ -99,14 +100,6 @@ def write_bundle(b: BundleInputs, folder: Path) -> Path:
     (folder / "evidence").mkdir(exist_ok=True)
     b.evidence.table.to_csv(folder / "evidence" / "comparison.csv", index=False)
     (folder / "evidence" / "evidence.json").write_text(json.dumps(b.evidence.to_dict(), indent=1, default=float))
-
-    plot_dir = folder / "plots"
-    plot_dir.mkdir(exist_ok=True)
-    plots.loss_curves(b.result.history, b.result.best_epoch, plot_dir / "loss_curves.png")
-    plots.predicted_vs_actual(b.test_actual, b.test_predicted, b.spec.target.task, plot_dir / "predicted_vs_actual.png")
-    for col, vocab in b.vocabularies.items():
-        plots.vector_map(vocab, b.result.vectors[col], plot_dir / f"vectors_{col}.png")
-    plots.comparison(b.evidence.table, b.evidence.primary_metric, plot_dir / "downstream_comparison.png")
 
     (folder / "summary.md").write_text(summary_text(b), encoding="utf-8")
     return vector_folder

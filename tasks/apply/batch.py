@@ -32,8 +32,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks.ingest import InputError
-from entivec.tasks.lookup_model import (
+from entivec.tasks.apply.lookup import (
     CategoryTypeError,
     ColumnLookup,
     ColumnReport,
@@ -42,6 +41,7 @@ from entivec.tasks.lookup_model import (
     category_type_problem,
     prepare,
 )
+from entivec.tasks.ingest.read import InputError
 
 DEFAULT_CHUNK_ROWS = 1_000_000
 METADATA_PREFIX = "entivec."

@@ -1,5 +1,4 @@
-"""Honest downstream evaluation: do learned vectors help scikit-learn models on held-out rows, against baselines?
-
+"""
 The vectors are trained on the target, so a downstream model that sees in-sample vectors of its own training
 rows sees a smoothed copy of their targets: it looks better in training than it will be on new rows. As with
 target encoding, the cure is cross-fitting: each downstream training row gets vectors from a network trained
@@ -16,7 +15,6 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -33,15 +31,15 @@ from sklearn.ensemble import (
 )
 from sklearn.impute import SimpleImputer
 from sklearn.linear_model import LogisticRegression, Ridge
-from sklearn.model_selection import KFold, StratifiedKFold
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, StandardScaler, TargetEncoder
 from threadpoolctl import threadpool_limits
 
 from entivec.schemas.spec import Spec
 from entivec.schemas.vocabulary import category_strings
-from entivec.tasks import targets
-from entivec.tasks.metrics import PRIMARY, task_metrics
+from entivec.tasks.evidence.crossfit import fold_splitter
+from entivec.tasks.evidence.metrics import PRIMARY, task_metrics
+from entivec.tasks.train import targets
 
 # Feature sets, in the order they appear in the table. Only the first three are "without vectors".
 NON_VECTOR_SETS = ("baseline", "onehot", "target_encoding")
@@ -58,157 +56,6 @@ N_JOBS = 2
 # parallel regions collapse when another process competes for the 2 cores: measured here, 8,000 rows x 23
 # columns took 0.3 s on one thread and 6-12 s on two while another job was busy; idle, two threads gain little.
 OPENMP_THREADS = 1
-
-
-# --- alignment and cross-fitting -------------------------------------------------------------------------------
-
-
-def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
-    """Rotate and translate ``source`` onto ``reference`` by orthogonal Procrustes, fitted on ``rows``.
-
-    Both matrices have one row per vocabulary id and the same shape. With A and B the chosen rows of each,
-    centred on their own means, the rotation R is the orthogonal matrix minimising ||A R - B||_F, which is
-    U Vᵀ for the singular value decomposition A ᵀB = U S Vᵀ (Schönemann, "A generalized solution of the
-    orthogonal Procrustes problem", Psychometrika 1966). The whole of ``source`` is then moved:
-    (source - mean_A) R + mean_B. R may include a reflection; no scaling is applied.
-
-    ``rows`` are vocabulary ids (integers) or a boolean mask; the default is every row but 0, the unknown row,
-    whose vector stands for whatever was rare or missing and is no fixed point to align on.
-    """
-    src = np.asarray(source, dtype=np.float64)
-    ref = np.asarray(reference, dtype=np.float64)
-    if src.ndim != 2 or ref.ndim != 2:
-        raise ValueError("align_to needs two 2-d matrices (vocabulary rows x dimensions)")
-    if src.shape != ref.shape:
-        raise ValueError(f"cannot align a {src.shape} matrix onto a {ref.shape} matrix: shapes differ")
-    if rows is None:
-        picked = np.arange(1, src.shape[0])
-    else:
-        picked = np.asarray(rows)
-        if picked.dtype == bool:
-            if picked.shape != (src.shape[0],):
-                raise ValueError("a boolean row mask must have one entry per vocabulary row")
-            picked = np.flatnonzero(picked)
-        picked = picked.astype(np.int64, copy=False)
-    if picked.size == 0:
-        raise ValueError("align_to needs at least one shared row to align on")
-    a, b = src[picked], ref[picked]
-    mean_a, mean_b = a.mean(axis=0), b.mean(axis=0)
-    u, _, vt = np.linalg.svd((a - mean_a).T @ (b - mean_b))
-    rotation = u @ vt
-    return (src - mean_a) @ rotation + mean_b
-
-
-def fold_splitter(task: str, folds: int, seed: int) -> KFold | StratifiedKFold:
-    """The folds used for cross-fitting: KFold for regression, StratifiedKFold for binary, shuffled with seed."""
-    if task == "regression":
-        return KFold(n_splits=folds, shuffle=True, random_state=seed)
-    if task == "binary":
-        return StratifiedKFold(n_splits=folds, shuffle=True, random_state=seed)
-    raise ValueError(f"unknown task {task!r}; expected 'regression' or 'binary'")
-
-
-def _id_matrix(cat_ids: np.ndarray, columns: list[str]) -> np.ndarray:
-    ids = np.asarray(cat_ids)
-    if ids.ndim == 1 and len(columns) == 1:
-        ids = ids[:, None]
-    if ids.ndim != 2 or ids.shape[1] != len(columns):
-        raise ValueError(f"cat_ids must have one column per embedded column ({len(columns)}), got {ids.shape}")
-    if not np.issubdtype(ids.dtype, np.integer):
-        raise ValueError("cat_ids must be integer vocabulary ids")
-    if ids.size and ids.min() < 0:
-        raise ValueError("cat_ids must not be negative (0 is the unknown id)")
-    return ids.astype(np.int64, copy=False)
-
-
-def vectors_for_ids(cat_ids: np.ndarray, matrices: dict[str, np.ndarray], columns: list[str]) -> dict[str, np.ndarray]:
-    """Per column, the rows of its vector matrix picked by the ids: (n_rows, dim) each."""
-    ids = _id_matrix(cat_ids, columns)
-    out = {}
-    for j, col in enumerate(columns):
-        matrix = np.asarray(matrices[col])
-        if ids.size and ids[:, j].max() >= matrix.shape[0]:
-            raise ValueError(f"column {col!r}: id {ids[:, j].max()} is beyond its {matrix.shape[0]} vector rows")
-        out[col] = matrix[ids[:, j]]
-    return out
-
-
-def out_of_fold_vectors(
-    cat_ids: np.ndarray,
-    y: np.ndarray,
-    *,
-    columns: list[str],
-    folds: int,
-    seed: int,
-    fit_fold: Callable[[np.ndarray], dict[str, np.ndarray]] | None = None,
-    reference: dict[str, np.ndarray],
-    task: str,
-    fit_folds: Callable[[list[np.ndarray]], Sequence[dict[str, np.ndarray]]] | None = None,
-) -> dict[str, np.ndarray]:
-    """Vectors for downstream training rows, each from a network that never saw that row's target.
-
-    ``cat_ids`` is (n_train, k): the vocabulary ids of the rows, one column per name in ``columns``.
-    For each fold (see ``fold_splitter``), ``fit_fold(train_row_indices)`` trains on the other folds' rows only
-    and returns a vector matrix per column, with the same vocabulary rows as ``reference`` (the full-data
-    vectors). Each matrix is rotated onto ``reference`` with ``align_to``, fitted on the categories that occur
-    in that fold's training rows (the only rows the fold's network learned; row 0 excluded). The fold's rows
-    then take their vectors from it.
-
-    A category that does not occur in the fold's training rows (e.g. one seen once in all the data) gets the
-    fold's unknown row (id 0), just as a category never seen in training gets the unknown row when vectors are
-    applied to new data: its own target must not reach its own vector. ``sklearn.preprocessing.TargetEncoder``
-    does the same with its fallback to the overall mean.
-
-    ``fit_folds`` may replace ``fit_fold``: it gets every fold's training rows at once, in fold order, and
-    returns their matrices in the same order, so the folds can be trained in parallel (``tasks.crossfit``);
-    the assembly is the same either way.
-
-    Returns per column an array (n_train, dim), float64.
-    """
-    if (fit_fold is None) == (fit_folds is None):
-        raise ValueError("give exactly one of fit_fold and fit_folds")
-    ids = _id_matrix(cat_ids, columns)
-    n = ids.shape[0]
-    y = np.asarray(y).reshape(-1)
-    if y.shape[0] != n:
-        raise ValueError(f"cat_ids has {n} rows but y has {y.shape[0]}")
-    missing = [c for c in columns if c not in reference]
-    if missing:
-        raise ValueError(f"no reference vectors for column(s) {missing}")
-    refs = {c: np.asarray(reference[c], dtype=np.float64) for c in columns}
-    for j, col in enumerate(columns):
-        if n and ids[:, j].max() >= refs[col].shape[0]:
-            raise ValueError(f"column {col!r}: id {ids[:, j].max()} is beyond its {refs[col].shape[0]} vector rows")
-    out = {c: np.full((n, refs[c].shape[1]), np.nan) for c in columns}
-    covered = np.zeros(n, dtype=np.int64)
-
-    splits = list(fold_splitter(task, folds, seed).split(np.zeros((n, 1)), y))
-    if fit_folds is not None:
-        fitted = list(fit_folds([train_rows for train_rows, _ in splits]))
-        if len(fitted) != len(splits):
-            raise ValueError(f"fit_folds returned {len(fitted)} results for {len(splits)} folds")
-    else:  # one fold at a time: only one fold's network is alive at once
-        fitted = (fit_fold(train_rows) for train_rows, _ in splits)
-    for (train_rows, held_rows), fold_mats in zip(splits, fitted, strict=False):
-        for j, col in enumerate(columns):
-            if col not in fold_mats:
-                raise ValueError(f"fit_fold returned no vectors for column {col!r}")
-            mat = np.asarray(fold_mats[col], dtype=np.float64)
-            if mat.shape != refs[col].shape:
-                raise ValueError(
-                    f"column {col!r}: fit_fold returned a {mat.shape} matrix, the reference is {refs[col].shape}; "
-                    "each fold must be trained against the full-data vocabulary"
-                )
-            learned = np.zeros(mat.shape[0], dtype=bool)
-            learned[ids[train_rows, j]] = True
-            learned[0] = False
-            aligned = align_to(mat, refs[col], rows=learned if learned.any() else None)
-            held_ids = ids[held_rows, j]
-            out[col][held_rows] = aligned[np.where(learned[held_ids], held_ids, 0)]
-        covered[held_rows] += 1
-    if not (covered == 1).all():  # a splitter that repeats or skips rows would leak or leave holes
-        raise RuntimeError("the folds did not cover every training row exactly once")
-    return out
 
 
 # --- the downstream comparison ----------------------------------------------------------------------------------

@@ -29,7 +29,7 @@ import pandas as pd
 
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
-from entivec.tasks.evaluate import align_to
+from entivec.tasks.evidence.align import align_to
 
 # Rows of the distance matrix computed at once in the neighbour search: bounds memory to CHUNK x n floats.
 _NEIGHBOUR_CHUNK = 1024

@@ -2,6 +2,6 @@
 
 import mlflow.models
 
-from entivec.tasks.lookup_model import VectorLookupModel
+from entivec.tasks.apply.served import VectorLookupModel
 
 mlflow.models.set_model(VectorLookupModel())

@@ -1,0 +1,1 @@
+"""Applying vectors: the category lookup with its unknown-category rule, the batch job, exports."""

@@ -1,0 +1,1 @@
+"""Evidence: metrics, Procrustes alignment, cross-fitted vectors and the downstream comparison against baselines."""

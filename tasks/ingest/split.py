@@ -1,0 +1,89 @@
+"""Splitting the cleaned rows into training and held-out rows, at random or by time.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+
+from entivec.schemas.spec import (
+    SpecError,
+    SplitSpec,
+)
+from entivec.schemas.tables import (
+    parse_times,
+)
+from entivec.tasks.ingest.clean import examples, with_bookkeeping
+from entivec.tasks.ingest.read import InputError, number_or_none, timestamp_or_none
+
+# --- split ------------------------------------------------------------------------------------------------------
+
+
+def _cutoff_for(times: pd.Series, split: SplitSpec) -> Any:
+    cutoff = split.cutoff
+    if pd.api.types.is_numeric_dtype(times.dtype):
+        number = number_or_none(cutoff)
+        if number is None:
+            raise SpecError(
+                f"spec: key 'split.cutoff' is {cutoff!r}, but time column {split.time_column!r} holds numbers "
+                f"(e.g. {times.dropna().iloc[0] if times.notna().any() else 'none'}); give a number"
+            )
+        return number
+    stamp = timestamp_or_none(cutoff)
+    if stamp is None:
+        raise SpecError(f"spec: key 'split.cutoff' is {cutoff!r}, which cannot be read as a time")
+    return stamp
+
+
+def split_rows(frame: pd.DataFrame, split: SplitSpec) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(train, test). Both keep the input's row order; index reset.
+
+    - ``random``: a permutation drawn from ``numpy.random.default_rng(seed)`` picks ceil(n * test_fraction)
+      test rows (the rounding scikit-learn's train_test_split uses), at least 1 and at most n - 1.
+      The same rows in the same order with the same seed always give the same split.
+    - ``time``: rows whose time is at or after ``cutoff`` are test. Text times are read as UTC (see
+      ``parse_times``); a numeric time column (e.g. a year) is compared as numbers.
+    """
+    n = len(frame)
+    if split.method == "random":
+        if n < 2:
+            raise InputError(f"cannot split {n} row(s) into a train and a test part; at least 2 are needed")
+        n_test = min(max(math.ceil(n * split.test_fraction), 1), n - 1)
+        order = np.random.default_rng(split.seed).permutation(n)
+        is_test = np.zeros(n, dtype=bool)
+        is_test[order[:n_test]] = True
+    else:
+        column = split.time_column
+        assert column is not None  # the spec model requires it for a time split
+        if column not in frame.columns:
+            raise InputError(f"time split: column {column!r} (spec key split.time_column) is not in the table")
+        times = parse_times(frame[column])
+        cutoff = _cutoff_for(times, split)
+        unreadable = times.isna().to_numpy()
+        if unreadable.any():
+            raise InputError(
+                f"time split: {int(unreadable.sum())} row(s) of column {column!r} cannot be read as a time; "
+                f"{examples(with_bookkeeping(frame), np.flatnonzero(unreadable))}"
+            )
+        is_test = (times >= cutoff).to_numpy(dtype=bool)
+        if is_test.all() or not is_test.any():
+            side = "train" if is_test.all() else "test"
+            raise InputError(
+                f"time split on column {column!r} at cutoff {split.cutoff!r} (spec key split.cutoff) leaves the "
+                f"{side} part empty: times run from {times.min()} to {times.max()}"
+            )
+    train = frame[~is_test].reset_index(drop=True)
+    test = frame[is_test].reset_index(drop=True)
+    return train, test
+
+
+
+@task(name="split", cache_policy=NO_CACHE)
+def split(frame: pd.DataFrame, split: SplitSpec) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """split_rows as a task."""
+    return split_rows(frame, split)

@@ -1,0 +1,1 @@
+"""Presentation: plots and readable HTML reports of runs, gates and version comparisons."""

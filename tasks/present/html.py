@@ -1,0 +1,128 @@
+"""HTML building blocks for entivec's reports: escaping, tables, embedded PNG images, simple Markdown, one page.
+
+Every page is one self-contained file: styles inline, images as base64 PNG, no script, no network.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import re
+from datetime import UTC, datetime
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")  # files only, never a window
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+
+CAUTION = (
+    "Vectors of places or groups (postcodes, stores, depots, ...) can stand in for protected attributes of the "
+    "people behind them; check what they encode before they feed decisions about people."
+)
+
+_CSS = """
+body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;margin:2em auto;max-width:1100px;
+color:#1d232a;line-height:1.45;padding:0 1em}
+h1{font-size:1.6em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}h2{font-size:1.25em;margin-top:1.8em}
+h3{font-size:1.05em}table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
+th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top}
+th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
+.pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
+.verdict{font-size:1.15em;padding:.5em .8em;border-radius:6px;display:inline-block}
+.verdict.pass{background:#dafbe1}.verdict.fail{background:#ffebe9}
+img{max-width:100%;border:1px solid #eaeef2;margin:.4em 0}.muted{color:#57606a;font-size:.9em}
+.caution{background:#fff8c5;border:1px solid #d4a72c;padding:.6em .8em;border-radius:6px}
+pre{background:#f6f8fa;padding:.6em;overflow-x:auto}
+"""
+
+
+def esc(value: Any) -> str:
+    return html.escape("" if value is None else str(value))
+
+
+def png_bytes(fig) -> bytes:
+    buffer = io.BytesIO()
+    fig.tight_layout()
+    fig.savefig(buffer, format="png", dpi=100)
+    plt.close(fig)
+    return buffer.getvalue()
+
+
+def image(data: bytes, alt: str) -> str:
+    return f'<img alt="{esc(alt)}" src="data:image/png;base64,{base64.b64encode(data).decode("ascii")}">'
+
+
+def _cell(value: Any) -> str:
+    if isinstance(value, (float, np.floating)):
+        text = "" if not np.isfinite(value) else f"{value:.6g}"
+        return f'<td class="num">{text}</td>'
+    if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
+        return f'<td class="num">{value}</td>'
+    if isinstance(value, str) and value in ("pass", "FAIL", "info"):
+        return f'<td class="{ {"pass": "pass", "FAIL": "fail", "info": "info"}[value] }">{value}</td>'
+    return f"<td>{esc(value)}</td>"
+
+
+def table(frame: pd.DataFrame) -> str:
+    if frame is None or frame.empty:
+        return '<p class="muted">(nothing to show)</p>'
+    head = "".join(f"<th>{esc(c)}</th>" for c in frame.columns)
+    body = "".join("<tr>" + "".join(_cell(v) for v in row) + "</tr>" for row in frame.itertuples(index=False))
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def markdown(text: str) -> str:
+    """The small part of Markdown our summaries use: headings, bullet lists, paragraphs, `code`, **bold**."""
+    out, items, para = [], [], []
+
+    def inline(s: str) -> str:
+        s = esc(s)
+        s = re.sub(r"`([^`]+)`", r"<code>\1</code>", s)
+        return re.sub(r"\*\*([^*]+)\*\*", r"<strong>\1</strong>", s)
+
+    def flush() -> None:
+        if items:
+            out.append("<ul>" + "".join(f"<li>{inline(i)}</li>" for i in items) + "</ul>")
+            items.clear()
+        if para:
+            out.append(f"<p>{inline(' '.join(para))}</p>")
+            para.clear()
+
+    for line in text.splitlines():
+        stripped = line.strip()
+        heading = re.match(r"^(#{1,6})\s+(.*)$", stripped)
+        if heading:
+            flush()
+            level = min(len(heading.group(1)) + 2, 6)  # the page's own h1/h2 stay above
+            out.append(f"<h{level}>{inline(heading.group(2))}</h{level}>")
+        elif stripped.startswith(("- ", "* ")):
+            if para:
+                flush()
+            items.append(stripped[2:])
+        elif not stripped:
+            flush()
+        else:
+            if items:
+                flush()
+            para.append(stripped)
+    flush()
+    return "\n".join(out)
+
+
+def page(title: str, body: list[str]) -> str:
+    stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    return (
+        f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{esc(title)}</title>'
+        f"<style>{_CSS}</style></head><body><h1>{esc(title)}</h1>" + "\n".join(body)
+        + f'<p class="caution">{esc(CAUTION)}</p><p class="muted">Written by entivec at {stamp}.</p></body></html>'
+    )
+
+
+def facts(pairs: list[tuple[str, Any]]) -> str:
+    rows = "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in pairs if v not in (None, ""))
+    return f"<table>{rows}</table>"
