@@ -6,6 +6,8 @@ Layout of a vector-set folder (open formats only; nothing here is ever pickled):
                                  code version, metrics
     vocabulary/<column>.json     the Vocabulary of each embedded column
     vectors/<column>.npy         float32 matrix, one row per vocabulary id (row 0 = unknown)
+    confidence/<column>.parquet  optional: how well each category's vector is determined (CONFIDENCE_COLUMNS),
+                                 one row per vocabulary id in id order
 """
 
 from __future__ import annotations
@@ -22,6 +24,11 @@ import numpy as np
 from entivec.schemas.vocabulary import Vocabulary
 
 FORMAT = "entivec.vector_set/1"
+# Per-category confidence, one row per vocabulary id (row 0 = unknown): `count` training rows of the category,
+# `spread` the root mean squared distance of its aligned fold vectors around its full-data vector, `relative_spread`
+# that spread over the column's median distance between categories, `in_all_folds` whether every fold network
+# saw it in training. NaN spread where no fold saw the category.
+CONFIDENCE_COLUMNS = ("id", "category", "count", "spread", "relative_spread", "in_all_folds")
 _SAFE = re.compile(r"[^A-Za-z0-9_.-]")
 
 
@@ -36,10 +43,21 @@ class VectorSet:
     vocabularies: dict[str, Vocabulary]
     vectors: dict[str, np.ndarray]
     metadata: dict[str, Any] = field(default_factory=dict)
+    # column -> pandas DataFrame with CONFIDENCE_COLUMNS; empty when the run trained no fold networks
+    confidence: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if set(self.vocabularies) != set(self.vectors):
             raise ValueError("vector set: vocabularies and vectors name different columns")
+        for col, table in self.confidence.items():
+            if col not in self.vectors:
+                raise ValueError(f"vector set: confidence for {col!r}, which has no vectors")
+            missing = [c for c in CONFIDENCE_COLUMNS if c not in table.columns]
+            if missing or len(table) != self.vocabularies[col].size:
+                raise ValueError(
+                    f"vector set: confidence of column {col!r} needs columns {list(CONFIDENCE_COLUMNS)} and one row "
+                    f"per vocabulary id ({self.vocabularies[col].size}); has {list(table.columns)}, {len(table)} rows"
+                )
         for col, matrix in self.vectors.items():
             if matrix.ndim != 2 or matrix.shape[0] != self.vocabularies[col].size:
                 raise ValueError(
@@ -71,12 +89,19 @@ class VectorSet:
             self.vocabularies[col].save(folder / "vocabulary" / f"{stem}.json")
             np.save(folder / "vectors" / f"{stem}.npy", np.ascontiguousarray(self.vectors[col], dtype=np.float32))
             files[col] = stem
+        if self.confidence:
+            (folder / "confidence").mkdir(parents=True, exist_ok=True)
+            for col, table in self.confidence.items():
+                table.loc[:, list(CONFIDENCE_COLUMNS)].to_parquet(
+                    folder / "confidence" / f"{column_file_stem(col)}.parquet", index=False
+                )
         meta = {
             **self.metadata,
             "format": FORMAT,
             "columns": self.columns,
             "files": files,
             "dimensions": {c: self.dimension(c) for c in self.columns},
+            "confidence_columns": sorted(self.confidence),
         }
         (folder / "vector_set.json").write_text(json.dumps(meta, indent=1, default=str), encoding="utf-8")
         return folder
@@ -95,7 +120,12 @@ class VectorSet:
             stem = meta["files"][col]
             vocabularies[col] = Vocabulary.load(folder / "vocabulary" / f"{stem}.json")
             vectors[col] = np.load(folder / "vectors" / f"{stem}.npy", allow_pickle=False)
-        return cls(vocabularies, vectors, meta)
+        confidence = {}
+        for col in meta.get("confidence_columns", []):
+            import pandas as pd
+
+            confidence[col] = pd.read_parquet(folder / "confidence" / f"{meta['files'][col]}.parquet")
+        return cls(vocabularies, vectors, meta, confidence)
 
 
 def component_names(column: str, dimension: int) -> list[str]:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -58,7 +60,33 @@ def test_round_trip_and_vector_set_layout(tmp_path):
     assert np.array_equal(back.vectors["store/id"], vs.vectors["store/id"])
     assert back.lookup("store/id", ["y", "nope"]).tolist() == [[4.0, 5.0], [0.0, 1.0]]
     assert "/" not in column_file_stem("store/id")
-    assert column_file_stem("store/id") == column_file_stem("store/id")  # stable across processes (crc32)
+    # Stable across processes: Python's own str hash is salted per process (PYTHONHASHSEED), so a name built from
+    # it would differ in a second interpreter; ask two interpreters with different salts.
+    import subprocess
+    import sys
+
+    probe = "from entivec.schemas.vector_set import column_file_stem as f; print(f('store/id'))"
+    names = {
+        subprocess.run(
+            [sys.executable, "-c", probe],
+            capture_output=True, text=True, check=True, env={**os.environ, "PYTHONHASHSEED": seed},
+        ).stdout.strip()
+        for seed in ("1", "2")
+    }
+    assert names == {column_file_stem("store/id")}
+
+
+def test_confidence_round_trips_with_the_vector_set(tmp_path):
+    v = Vocabulary.build("depot", pd.Series(["a", "b", "a"]))
+    table = pd.DataFrame({
+        "id": [0, 1, 2], "category": v.categories, "count": [0, 2, 1], "spread": [np.nan, 0.1, 0.4],
+        "relative_spread": [np.nan, 0.05, 0.2], "in_all_folds": [False, True, False],
+    })
+    vs = VectorSet({"depot": v}, {"depot": np.ones((3, 2), dtype=np.float32)}, {}, {"depot": table})
+    back = VectorSet.load(vs.save(tmp_path / "vs"))
+    pd.testing.assert_frame_equal(back.confidence["depot"], table)
+    with pytest.raises(ValueError, match="one row per vocabulary id"):
+        VectorSet({"depot": v}, {"depot": np.ones((3, 2))}, {}, {"depot": table.iloc[:2]})
 
 
 def test_vector_rows_must_match_vocabulary():
