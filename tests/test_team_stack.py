@@ -21,7 +21,8 @@ import entivec_test_lifecycle_support as support  # registered by conftest.py
 import pytest
 import yaml
 
-pytestmark = [pytest.mark.integration, pytest.mark.services]
+# Markers: the tests that get the `stack` fixture are marked services and integration by tests/conftest.py;
+# the settings-file test starts nothing and carries neither.
 
 REPO = Path(__file__).resolve().parent.parent
 STACK = REPO / "infra" / "stack"
@@ -297,6 +298,7 @@ def test_down_stops_every_server(stack):
             assert s.connect_ex(("127.0.0.1", port)) != 0
 
 
+@pytest.mark.services
 def test_down_stops_what_a_failed_up_started(tmp_path):
     """MLflow's port is taken: `up` fails naming it, PostgreSQL is left running, and `down` stops it."""
     _skip_without_postgres()
