@@ -11,6 +11,7 @@ from prefect.cache_policies import NO_CACHE
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
+from entivec import progress
 from entivec.tasks.apply.batch import DEFAULT_CHUNK_ROWS, ApplyResult, apply_file_task
 from entivec.tasks.apply.lookup import DEFAULT_UNKNOWN, check_unknown_rule
 from entivec.tasks.lifecycle import registry
@@ -85,7 +86,8 @@ def apply(
     """
     check_unknown_rule(unknown)
     loaded = load_vectors(model_name, str(version))
-    bar = _progress_bar() if show_progress else None
+    bar = _progress_bar() if show_progress and progress.level() != "quiet" else None
+    shown = progress.begin("apply")
     with bar or nullcontext():
         job = bar.add_task(f"{model_name} v{loaded.version}", total=None) if bar else None
         result = apply_file_task(
@@ -94,6 +96,7 @@ def apply(
             chunk_rows=chunk_rows,
             progress=(lambda done, total: bar.update(job, completed=done, total=total or None)) if bar else None,
         )
+    shown.end(result.rows, f"{result.chunks} chunk(s) written to {result.output_path}")
     log_report(result)
     return result
 

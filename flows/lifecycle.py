@@ -14,6 +14,7 @@ from prefect import flow, get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 from prefect.states import Failed
 
+from entivec import progress
 from entivec.schemas.spec import Spec
 from entivec.tasks.ingest.clean import clean, validate_and_clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint
@@ -133,14 +134,18 @@ def promote(
     repair_history(name)
     candidate, production = load_versions(name, version or registry.STAGING)
     spec, spec_file = read_gate_spec(name, candidate, spec_path, source)
+    shown = progress.begin("read and clean")
     raw, files = ingest(spec, spec_file)
     fingerprint = data_fingerprint(raw, files)["sha256"]
     cleaned = clean(raw, spec, files)
     train_rows, test_rows = split(cleaned.frame, spec.split)
+    shown.end(len(raw), f"{len(test_rows):,} held out")
+    shown = progress.begin("gate")
     result = gate.run_gate_task(
         spec=spec, candidate=candidate, production=production, train_rows=train_rows, test_rows=test_rows,
         data_fingerprint=fingerprint,
     )
+    shown.end(len(test_rows), "passed" if result.passed else "failed")
     forced = force and not result.passed
     evidence_run = record_evidence(result, who, reason, forced, spec_file)
     candidate_fingerprint = registry.client().get_model_version(name, candidate.version).tags.get(

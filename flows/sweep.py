@@ -28,6 +28,7 @@ from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
 from prefect.context import FlowRunContext
 
+from entivec import progress
 from entivec.schemas.spec import Spec, TrainingSpec, embedding_size, load_spec
 from entivec.tasks.evidence.crossfit import (
     TORCH_LOCK,
@@ -218,8 +219,10 @@ def _log_sweep(spec: Spec, spec_path: str, table: pd.DataFrame, summary: str, pr
 def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
     """Train ``spec_path`` with each candidate vector size (see ``candidate_sizes``); compare them, register nothing."""
     spec = load_spec(spec_path)
+    shown = progress.begin("read and clean")
     raw, files = ingest(spec, spec_path)
     cleaned = clean(raw, spec, files)
+    shown.end(len(raw), f"{len(cleaned.frame):,} kept, {len(cleaned.quarantine):,} quarantined")
     train_rows, test_rows = split(cleaned.frame, spec.split)
     vocabularies = build_vocabularies_task(train_rows, spec, None)
     encoder = FeatureEncoder.fit(train_rows, spec, vocabularies)
@@ -248,6 +251,7 @@ def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
 
     lines, baselines, primary = [], {}, None
     for (label, sizes), (full, folds) in zip(plans, submitted, strict=True):
+        shown = progress.begin(f"candidate {label}")
         fit = full.result()
 
         def fold_results(asked: list[np.ndarray], folds=folds) -> list[dict[str, np.ndarray]]:
@@ -282,6 +286,7 @@ def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
             without = scores.loc[model].loc[list(NON_VECTOR_SETS)]
             baselines[model] = (str(without.idxmin()), float(without.min()))  # the same for every candidate
         lines.append(line)
+        shown.end(len(train_rows), f"valid loss {fit.best_valid_loss:.4g}")
 
     table = pd.DataFrame(lines)
     summary = _summary(table, primary, list(spec.evaluation.models), baselines)

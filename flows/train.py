@@ -10,6 +10,7 @@ from pathlib import Path
 from prefect import flow, get_run_logger, task
 from prefect.transactions import transaction
 
+from entivec import progress
 from entivec.schemas.spec import Spec, load_spec
 from entivec.settings import project_home
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
@@ -96,14 +97,18 @@ def train(
     spec, spec_text = read_spec(spec_path)
     if source is not None:
         spec = drift.with_source(spec, source)
+    shown = progress.begin("read")
     raw, files = ingest(spec, spec_path)
+    shown.end(len(raw), f"{len(files)} file(s)")
     fingerprint = fingerprint_of(raw, files)
     if skip_unchanged:
         same = outcomes.latest_same_input_task(spec.name, fingerprint["sha256"], spec.content_hash())
         if same is not None:
             return _no_new_data(spec, same, fingerprint)
+    shown = progress.begin("validate and clean")
     cleaned = clean(raw, spec, files)
     check_ledger(cleaned)
+    shown.end(len(raw), f"{len(cleaned.frame):,} kept, {len(cleaned.quarantine):,} quarantined")
 
     reference, drift_report, notes = None, None, []
     if incremental:
@@ -112,12 +117,15 @@ def train(
             notes.append(f"incremental: {spec.name} has no production version, so no drift check; trained from scratch")
             get_run_logger().warning(notes[-1])
         else:
+            shown = progress.begin("drift check")
             drift_report = drift.compare_task(reference, raw, cleaned.frame, spec, fingerprint["sha256"])
+            shown.end(len(cleaned.frame), "passed" if drift_report.passed else "thresholds broken: stopping")
             drift.publish_in_prefect(drift_report)
             if not drift_report.passed:  # recorded, then stopped: production and the registry stay untouched
                 stopped = outcomes.record_stop_task(spec, drift_report, fingerprint["sha256"])
                 raise drift.DriftStop(drift_report, stopped)
             notes.append(f"incremental: drift against production version {reference.version} passed")
+    shown = progress.begin("split and encode")
     train_rows, test_rows = split(cleaned.frame, spec.split)
 
     start = earlier_version(spec.name, vocabulary_from) if vocabulary_from else reference
@@ -136,10 +144,14 @@ def train(
     elif warm_start:
         notes.append("no version to warm-start from: embedding tables start at random")
 
+    shown.end(len(train_rows) + len(test_rows), f"{len(train_rows):,} train, {len(test_rows):,} held out")
+    shown = progress.begin("train vectors")
     result = train_vectors(
         train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
         training=spec.training, task=spec.target.task, init_vectors=init_vectors,
     )
+    shown.end(len(train_rows) * max(len(result.history), 1),
+              f"{len(train_rows):,} rows x {len(result.history)} epoch(s), best epoch {result.best_epoch}")
     network_pred = predict(result.model, test_inputs, spec.target.task)
     if spec.target.task == "regression":
         network_pred = targets.inverse(network_pred, spec.target.transform)
@@ -148,14 +160,19 @@ def train(
     rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
     subset = train_inputs.take(rows)
     # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
+    shown = progress.begin("cross-fit folds")
     oof = cross_fit_vectors(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
+    shown.end(len(rows), f"{spec.evaluation.folds} folds")
     in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
     on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
+    shown = progress.begin("downstream evidence")
     evidence = evaluate_downstream(
         train_rows.iloc[rows], test_rows, spec,
         vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred,
     )
 
+    shown.end(len(rows) + len(test_rows), ", ".join(spec.evaluation.models))
+    shown = progress.begin("record and register")
     project_home().mkdir(parents=True, exist_ok=True)
     workdir = Path(tempfile.mkdtemp(prefix="run-", dir=project_home()))
     try:
@@ -203,7 +220,10 @@ def train(
             )
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
+    shown.end(note=f"version {version}")
+    shown = progress.begin("version report")
     report.publish_version_report_task(spec.name, version)
+    shown.end()
 
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,

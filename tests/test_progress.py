@@ -37,3 +37,14 @@ def test_bar_off_a_terminal_is_silent(capsys):
         b.advance(3)
         b.update(completed=10, status="done")
     assert capsys.readouterr().err == ""
+
+
+def test_begin_and_end_print_one_line_and_nothing_when_quiet(capsys, monkeypatch):
+    monkeypatch.setenv(progress.LEVEL_VARIABLE, "normal")
+    shown = progress.begin("read")
+    shown.end(3_000, "2 files")
+    out, err = capsys.readouterr()
+    assert out == "" and re.search(r"read\s+\d+\.\d s\s+3,000 rows\s+[\d,.]+ rows/s\s+\(2 files\)", err), err
+    monkeypatch.setenv(progress.LEVEL_VARIABLE, "quiet")
+    progress.begin("read").end(3_000)
+    assert capsys.readouterr() == ("", "")

@@ -85,6 +85,32 @@ def _run(call):
               EXIT_FAILED)
 
 
+def _check_spec_first(spec: Path) -> None:
+    """A spec mistake reported in a second, before the flow's imports and its Prefect server take their time."""
+    from entivec.schemas.spec import load_spec
+
+    _run(lambda: load_spec(spec))
+
+
+def start_prefect_server() -> None:
+    """Start the temporary Prefect server now, as its own stage line, when no server is configured.
+
+    The flow would start the same one (Prefect keeps one per process and stops it at exit) at its first call,
+    silently; here the user sees what the wait is for.
+    """
+    from prefect.settings import PREFECT_API_URL, PREFECT_SERVER_EPHEMERAL_ENABLED
+
+    if PREFECT_API_URL.value() or not PREFECT_SERVER_EPHEMERAL_ENABLED.value():
+        return
+    from prefect.server.api.server import SubprocessASGIServer
+
+    from entivec import progress
+
+    shown = progress.begin("start Prefect server")
+    _run(lambda: SubprocessASGIServer().start())
+    shown.end(note="temporary, stopped when the command ends; set PREFECT_API_URL to use a shared one")
+
+
 DASK_HELP = (
     "Run the independent networks (cross-fitting folds, sweep candidates) on Dask: 'local' for a temporary "
     "cluster on this machine, or a scheduler address such as tcp://host:8786. Default: ENTIVEC_DASK_ADDRESS, "
@@ -123,8 +149,16 @@ def train(
     workers: Annotated[int, typer.Option(min=1, help=WORKERS_HELP)] = 2,
 ) -> None:
     """Validate, clean, train vectors, judge them downstream and register the result as `staging`."""
+    from entivec import progress
+
+    progress.note(f"train {spec}: loading (a line follows each finished stage)")
+    _check_spec_first(spec)
+    shown = progress.begin("load libraries")
     from entivec.flows.parallel import run_flow
     from entivec.flows.train import train as train_flow
+
+    shown.end()
+    start_prefect_server()
 
     if warm_start and not (incremental or vocabulary_from):
         _fail("--warm-start needs a version to start from: add --incremental (production) or --vocabulary-from")
@@ -185,9 +219,17 @@ def sweep(
     fmt: Annotated[Format, typer.Option("--format", help=FORMAT_HELP)] = Format.table,
 ) -> None:
     """Train one spec with several vector sizes and compare them (validation loss, downstream); registers nothing."""
+    from entivec import progress
+
+    progress.note(f"sweep {spec}: loading (a line follows each finished stage and candidate)")
+    _check_spec_first(spec)
+    shown = progress.begin("load libraries")
     from entivec.cli_output import emit, table
     from entivec.flows.parallel import run_flow
     from entivec.flows.sweep import sweep as sweep_flow
+
+    shown.end()
+    start_prefect_server()
 
     outcome = _run(lambda: run_flow(sweep_flow, dask, workers=workers, spec_path=str(spec), candidates=candidate))
     frame = outcome.table

@@ -57,10 +57,16 @@ def promote(
     ] = None,
 ) -> None:
     """Judge a candidate against the baseline and production by the spec's gate; on a pass make it production."""
+    from entivec import progress
+
+    progress.note(f"promote {name}: loading (a line follows each finished stage)")
+    shown = progress.begin("load libraries")
     from entivec.flows.lifecycle import GateRefused
     from entivec.flows.lifecycle import promote as promote_flow
 
+    shown.end()
     cli = _base()
+    cli.start_prefect_server()
 
     def run():
         state = promote_flow(

@@ -6,6 +6,7 @@ Every long step reports through this module, so commands look alike and one swit
   standard error: ``  ingest         12.3 s   1,234,567 rows   100,234 rows/s  (note)``;
 - ``bar(label, total)`` is a context manager giving a rich progress bar (per epoch, per fold, per chunk) when
   standard error is a terminal, and nothing otherwise; ``advance(n)`` moves it;
+- ``begin(name)`` ... ``.end(rows)`` is the same as ``stage`` for a flow body that reads as a list of steps;
 - ``note(text)`` prints one line as it is.
 
 The level comes from ``ENTIVEC_PROGRESS``: ``normal`` (default: stage lines and bars), ``quiet`` (nothing) or
@@ -67,6 +68,14 @@ class Stage:
     def add(self, rows: int) -> None:
         self.rows += int(rows)
 
+    def end(self, rows: int | None = None, note: str | None = None) -> None:
+        """Close a stage opened with :func:`begin`: count ``rows``, add ``note``, print its line."""
+        if rows is not None:
+            self.add(rows)
+        if note:
+            self.note(note)
+        _write(self.line())
+
     def note(self, text: str) -> None:
         self.notes.append(text)
 
@@ -94,6 +103,15 @@ def stage(name: str, *, unit: str = "rows") -> Iterator[Stage]:
         _write(f"  {name} ...")
     yield current
     _write(current.line())
+
+
+def begin(name: str, *, unit: str = "rows") -> Stage:
+    """Open a stage that :meth:`Stage.end` closes: for a flow body that reads top-down, with no block to indent.
+
+    A stage never ended (its step raised) prints nothing: the error speaks."""
+    if level() == "verbose":
+        _write(f"  {name} ...")
+    return Stage(name, unit)
 
 
 class _NoBar:

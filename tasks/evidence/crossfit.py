@@ -19,6 +19,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 from sklearn.model_selection import KFold, StratifiedKFold
 
+from entivec import progress
 from entivec.schemas.spec import Spec, TrainingSpec
 from entivec.tasks.evidence.align import align_to
 from entivec.tasks.train.encoder import EncodedInputs
@@ -190,6 +191,11 @@ def submit_folds(
     ]
 
 
+def _advanced(bar, result):
+    bar.advance()
+    return result
+
+
 def cross_fit_vectors(
     inputs: EncodedInputs,
     y: np.ndarray,
@@ -215,9 +221,11 @@ def cross_fit_vectors(
     in_flow_body = FlowRunContext.get() is not None and TaskRunContext.get() is None
 
     def fit_folds(fold_rows: list[np.ndarray]) -> list[dict[str, np.ndarray]]:
-        if in_flow_body:
-            return [future.result() for future in submit_folds(inputs, y, fold_rows, **settings)]
-        return [fit_fold(inputs, y, rows, **settings) for rows in fold_rows]
+        with progress.bar("cross-fit folds", len(fold_rows)) as shown:  # a bar per fold, on a terminal
+            if in_flow_body:
+                return [_advanced(shown, future.result()) for future in submit_folds(inputs, y, fold_rows,
+                                                                                      **settings)]
+            return [_advanced(shown, fit_fold(inputs, y, rows, **settings)) for rows in fold_rows]
 
     return out_of_fold_vectors(
         inputs.cat_ids, y, columns=spec.embed_names, folds=spec.evaluation.folds, seed=spec.evaluation.seed,

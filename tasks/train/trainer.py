@@ -41,6 +41,7 @@ import torch.nn.functional as F
 from prefect import task
 from prefect.cache_policies import NONE as NO_CACHE
 
+from entivec import progress
 from entivec.schemas.spec import TrainingSpec
 from entivec.tasks.train.encoder import EncodedInputs
 from entivec.tasks.train.network import EntityNet
@@ -288,6 +289,7 @@ def _evaluate(model: EntityNet, data: _Tensors, task: str) -> float:
 
 
 def _progress(enabled: bool):
+    from rich.console import Console
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
     return Progress(
@@ -298,6 +300,7 @@ def _progress(enabled: bool):
         TimeRemainingColumn(),
         disable=not enabled,
         transient=False,
+        console=Console(stderr=True),
     )
 
 
@@ -472,7 +475,8 @@ def _train_loop(
 
     best_loss, best_epoch, best_state, waited = math.inf, 0, None, 0
     history: list[dict] = []
-    interactive = training.progress and sys.stdout.isatty()
+    # On standard error, so standard output stays clean for scripts; off when entivec's output is quiet.
+    interactive = training.progress and progress.level() != "quiet" and sys.stderr.isatty()
     batches_per_epoch = math.ceil(n / batch)
     embedded = offsets[-1]
     width = embedded + train.dense.shape[1]
