@@ -229,6 +229,8 @@ def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
     train_inputs, test_inputs = encoder.transform(train_rows), encoder.transform(test_rows)
     y_train = targets.forward(train_rows[spec.target.column].to_numpy(), spec.target.transform)
     y_test = test_rows[spec.target.column].to_numpy(dtype=float)
+    targets.check_learnable(train_rows[spec.target.column].to_numpy(dtype=float), y_test, column=spec.target.column,
+                            task=spec.target.task, folds=spec.evaluation.folds, files=files)
     task_kind, columns = spec.target.task, spec.embed_names
     card = {c: vocabularies[c].size for c in columns}
     cardinalities = [card[c] for c in columns]

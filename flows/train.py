@@ -135,6 +135,8 @@ def train(
     train_inputs, test_inputs = encoder.transform(train_rows), encoder.transform(test_rows)
     y_train = targets.forward(train_rows[spec.target.column].to_numpy(), spec.target.transform)
     y_test = test_rows[spec.target.column].to_numpy(dtype=float)
+    targets.check_learnable(train_rows[spec.target.column].to_numpy(dtype=float), y_test, column=spec.target.column,
+                            task=spec.target.task, folds=spec.evaluation.folds, files=files)
     cardinalities = [vocabularies[c].size for c in spec.embed_names]
     sizes = [col.resolved_size(vocabularies[col.name].size) for col in spec.columns.embed]
     init_vectors = None

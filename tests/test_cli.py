@@ -218,3 +218,33 @@ def test_runs_list_gate_candidates_and_verdicts(cli, store):
     assert gate["note"] == "gate of stones version 2"  # Markdown marks taken out
     code, out = cli("runs", store.name)
     assert max(map(len, out.splitlines())) <= 80, out
+
+
+# --- valid but degenerate data: a clear error, exit 2, nothing registered ---------------------------------------
+
+
+def _degenerate(tmp_path: Path, frame: pd.DataFrame, task: str = "regression") -> Path:
+    spec_path = _spec(tmp_path, frame)
+    raw = yaml.safe_load(spec_path.read_text())
+    raw["target"] = {"column": "price", "task": task}
+    spec_path.write_text(yaml.safe_dump(raw, sort_keys=False))
+    return spec_path
+
+
+@pytest.mark.parametrize(("case", "fragment"), [
+    ("two_rows", "2 row(s) left after cleaning"),
+    ("one_class_binary", "target column 'price' (spec key target.column) holds one class only"),
+    ("constant_target", "target column 'price' (spec key target.column) has the same value (1234)"),
+])
+def test_degenerate_tables_end_in_a_clear_message(case, fragment, run_cli, registered_versions, tmp_path):
+    frame = lifecycle.diamonds(400, seed=2)
+    if case == "two_rows":
+        frame, task = frame.head(2), "regression"
+    elif case == "one_class_binary":
+        frame, task = frame.assign(price=1), "binary"
+    else:
+        frame, task = frame.assign(price=1234.0), "regression"
+    code, output = run_cli(["train", _degenerate(tmp_path / case, frame, task)])
+    assert code == 2, output
+    assert fragment in " ".join(output.split()) and "ValueError" not in output, output
+    assert registered_versions(lifecycle.MODEL) == 0

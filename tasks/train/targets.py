@@ -29,3 +29,39 @@ def inverse(z: np.ndarray, transform: str) -> np.ndarray:
     if transform == "log1p":
         return np.expm1(z)
     raise ValueError(f"unknown target transform {transform!r}")
+
+
+# Our own floor, not a standard: enough training rows for the network's early-stopping hold-out and for each
+# cross-fitting fold to train on more than a handful of rows.
+MIN_TRAIN_ROWS = 10
+
+
+def check_learnable(train_y: np.ndarray, test_y: np.ndarray, *, column: str, task: str, folds: int,
+                    files: list[str]) -> None:
+    """Refuse data that is valid row by row but leaves nothing to learn or judge, with a message naming the files
+    and the target column; raises InputError (exit 2 at the command line), before any training."""
+    from entivec.tasks.ingest.read import InputError
+
+    where = ", ".join(files[:3]) + (" …" if len(files) > 3 else "")
+    floor = max(MIN_TRAIN_ROWS, 2 * folds)
+    if len(train_y) < floor or len(test_y) < 1:
+        raise InputError(
+            f"{where}: {len(train_y) + len(test_y)} row(s) left after cleaning ({len(train_y)} to train on, "
+            f"{len(test_y)} held out); training needs at least {floor} training rows (evaluation.folds = {folds}) "
+            "and one held-out row")
+    train_y = np.asarray(train_y, dtype=np.float64)
+    values = np.unique(train_y[~np.isnan(train_y)])
+    if task == "binary":
+        if len(values) < 2:
+            raise InputError(
+                f"{where}: target column {column!r} (spec key target.column) holds one class only in the training "
+                f"rows (every value {values[0]:g}); a binary target needs rows of both 0 and 1")
+        held = np.unique(np.asarray(test_y, dtype=np.float64))
+        if len(held) < 2:
+            raise InputError(
+                f"{where}: target column {column!r} holds one class only in the {len(test_y)} held-out row(s); "
+                "the held-out metrics need both classes (more rows, or a different split)")
+    elif len(values) < 2:
+        raise InputError(
+            f"{where}: target column {column!r} (spec key target.column) has the same value ({values[0]:g}) on "
+            "every training row; there is nothing for the vectors to learn")
