@@ -95,7 +95,8 @@ def test_train_promote_refuse_force_rollback_history_diff_report(tmp_path, run_c
         "pass", "pass", "fail", "forced", "n/a", "n/a"]
     assert entries[6]["reason"] == "override for a test"
     assert "gain over production (version 2)" in entries[6]["details"]["failed_checks"]
-    assert entries[1]["details"]["figures"]["gain_vs_baseline"].startswith("+")
+    gain = entries[1]["details"]["figures"]["gain_vs_baseline"]  # JSON: numbers, the interval as an object
+    assert gain["value"] > 0 and gain["low"] <= gain["value"] <= gain["high"]
     fingerprint = registry.client().get_model_version(MODEL, "3").tags["entivec.data_fingerprint"]
     assert entries[6]["data_fingerprint"] == fingerprint and len(fingerprint) == 64
     evidence = registry.client().get_run(entries[6]["details"]["evidence_run"])

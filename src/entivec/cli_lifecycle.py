@@ -118,7 +118,7 @@ def _move_text(row) -> str:
     if row.event == "refused":
         stays = f"version {row.from_version}" if row.from_version else "no version"
         return f"refused version {row.to_version or '?'}; {row.alias} stays at {stays}"
-    return f"{row.event.replace('_', ' ')}: {row.alias} {row.from_version or '–'} → {row.to_version or '–'}"
+    return f"{row.event}: {row.alias} {row.from_version or '–'} → {row.to_version or '–'}"
 
 
 def history(
@@ -254,14 +254,15 @@ def _print_diff(cli, result, unchanged: bool, a: str, b: str, table) -> None:
         cli.console.print(table(_rounded(result.judged[shown]), title="A and B judged on the same held-out rows"))
     if not unchanged:
         rows = pd.DataFrame([{
-            "column": comp.column, "categories A→B": f"{comp.categories_older} → {comp.categories_newer}",
-            "added": len(comp.added), "dropped": len(comp.dropped),
-            "dims A→B": f"{comp.dimension_older} → {comp.dimension_newer}",
+            "column": comp.column, "categories": f"{comp.categories_older} → {comp.categories_newer}",
+            "new/gone": f"{len(comp.added)}/{len(comp.dropped)}",
+            "dims": f"{comp.dimension_older} → {comp.dimension_newer}",
             "drift": "" if comp.drift != comp.drift else f"{comp.drift:.3f}",
             "overlap (chance)": "" if comp.neighbour_overlap != comp.neighbour_overlap else
             f"{comp.neighbour_overlap:.2f} ({comp.chance_overlap:.2f})",
         } for comp in result.comparisons.values()])
-        cli.console.print(table(rows, title="per column (B aligned onto A)", wrap=("column",)))
+        cli.console.print(table(rows, title="per column, A → B (B aligned onto A; new in B / gone from A)",
+                                wrap=("column",)))
         for comp in result.comparisons.values():
             top = ", ".join(f"{c} {d:.2f}" for c, d in zip(comp.movers["category"].head(8),
                                                              comp.movers["drift"].head(8), strict=True) if d == d)
