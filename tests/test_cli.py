@@ -11,6 +11,7 @@ import csv
 import io
 import json
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -56,11 +57,18 @@ def entivec(home: Path, *args: str, timeout: int = 600) -> subprocess.CompletedP
                           text=True, timeout=timeout)
 
 
+LIBRARY_LOG = re.compile(r"\| (DEBUG|INFO|WARNING|ERROR|CRITICAL)\s*\||^\d{4}/\d\d/\d\d \d\d:\d\d:\d\d [A-Z]+ ",
+                         re.MULTILINE)
+
+
 def assert_clean_failure(done: subprocess.CompletedProcess, *fragments: str) -> None:
     assert done.returncode == 2, f"exit {done.returncode}\nstdout:\n{done.stdout}\nstderr:\n{done.stderr}"
     assert "Traceback" not in done.stderr and "Traceback" not in done.stdout, done.stderr
-    squashed = " ".join(done.stderr.split())
-    assert squashed.startswith("error:"), done.stderr  # entivec's own line comes first, no library log before it
+    # Only entivec's own lines: its progress lines, then the error; no library log line (Prefect's
+    # "HH:MM:SS.mmm | ERROR | ..." or MLflow's "YYYY/MM/DD HH:MM:SS INFO ...") before it.
+    assert not LIBRARY_LOG.search(done.stderr), done.stderr
+    assert any(line.startswith("error:") for line in done.stderr.splitlines()), done.stderr
+    squashed = " ".join(done.stderr[done.stderr.index("error:"):].split())
     for fragment in fragments:
         assert fragment in squashed, f"{fragment!r} not in {done.stderr!r}"
 
