@@ -150,8 +150,9 @@ def history(
     if out is None:
         typer.echo(text, nl=not text.endswith("\n"))
     else:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
+        from entivec.tasks.apply.outputs import write_text_atomically
+
+        cli._run(lambda: write_text_atomically(out, text, "the history"))
         cli.console.print(f"wrote {len(entries)} history entries to {out}")
 
 

@@ -31,6 +31,7 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
+from entivec.tasks.apply.outputs import write_text_atomically  # noqa: E402
 from entivec.tasks.lifecycle import audit, registry  # noqa: E402
 from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
 from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
@@ -349,8 +350,7 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
     number = str(mv.version)
     text = version_report_html(name, number)
     path = Path(out) if out else project_home() / "reports" / name / f"version-{number}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
+    write_text_atomically(path, text, "the report")  # all or nothing, mode per umask
     with tempfile.TemporaryDirectory(prefix="report-", dir=project_home()) as scratch:
         staged = Path(scratch) / VERSION_REPORT  # the artifact's name is fixed, whatever ``out`` is called
         staged.write_text(text, encoding="utf-8")
