@@ -242,6 +242,15 @@ def test_cli_apply(store, tmp_path, prefect_server):
     ])
     assert gone.exit_code == 2 and "has no version 9" in gone.output
     assert not (tmp_path / "x.parquet").exists()
+    guarded = runner.invoke(app, [
+        "apply", store.name, "--input", str(tmp_path / "stones*.csv"), "--output", str(tmp_path / "x.parquet"),
+        "--max-unknown-share", "0.01", "--no-progress",  # clarity's rare 'I1' stones are unknown in version 1
+    ])
+    assert guarded.exit_code == 2 and "largest unknown share allowed is 1.00%" in guarded.output, guarded.output
+    assert not (tmp_path / "x.parquet").exists() and not leftovers(tmp_path)
+    (tmp_path / "a-file").write_text("")
+    blocked = runner.invoke(app, ["export", store.name, "1", "--out", str(tmp_path / "a-file" / "vectors")])
+    assert blocked.exit_code == 2 and "cannot write the export" in blocked.output, blocked.output
 
 
 # --- the shared lookup ---------------------------------------------------------------------------------------

@@ -75,6 +75,19 @@ def lookup_frame(
     return pd.concat(blocks, axis=1) if len(blocks) > 1 else blocks[0]
 
 
+def input_example_for(vector_set: VectorSet, rows: int = 2) -> pd.DataFrame:
+    """A small table of known categories (the first ids of each column) that ``predict`` accepts as is.
+
+    Logged with the model, it shows a user what the input looks like and lets MLflow check the signature
+    against a real call; it holds only category labels, never a row of training data.
+    """
+    example = {}
+    for col in vector_set.columns:
+        known = vector_set.vocabularies[col].categories[1 : rows + 1] or [None]
+        example[col] = [known[i % len(known)] for i in range(rows)]
+    return pd.DataFrame(example, dtype=object)
+
+
 def signature_for(vector_set: VectorSet) -> ModelSignature:
     inputs = Schema([ColSpec("string", col, required=False) for col in vector_set.columns])
     outputs = Schema(

@@ -23,8 +23,8 @@ import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.tasks.apply import lookup
-from entivec.tasks.apply.served import signature_for
-from entivec.tasks.lifecycle import registry
+from entivec.tasks.apply.served import input_example_for, signature_for
+from entivec.tasks.lifecycle import lineage, registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
@@ -113,6 +113,7 @@ def record_run(
         for start in range(0, len(everything), 900):
             c.log_batch(run_id, metrics=everything[start : start + 900])
         c.set_tag(run_id, "mlflow.note.content", summary)
+        lineage.log_data_input(c, run_id, spec.source.path, fingerprint, spec.name, "training")
         c.log_artifacts(run_id, str(bundle))
     return run_id
 
@@ -130,11 +131,13 @@ def register_version(
             python_model=str(LOOKUP_MODEL_CODE),
             artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
             signature=signature_for(vector_set),
+            input_example=input_example_for(vector_set),
             pip_requirements=LOOKUP_REQUIREMENTS,
             registered_model_name=spec.name,
         )
     version = str(info.registered_model_version)
     c = registry.client()
+    lineage.describe(c, spec.name, version, spec.description)
     for key, value in version_tags.items():
         c.set_model_version_tag(spec.name, version, key, value)
     return version

@@ -36,6 +36,7 @@ from entivec.tasks.lifecycle import audit, registry  # noqa: E402
 from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
 from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
 from entivec.tasks.lifecycle.gate import GateResult
+from entivec.tasks.lifecycle.lineage import gate_params, log_data_input
 from entivec.tasks.lifecycle.registry import run_file  # noqa: E402
 from entivec.tasks.lifecycle.track import (  # noqa: E402
     link_in_prefect,  # noqa: E402
@@ -194,7 +195,9 @@ def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bo
         for col, comp in result.comparisons.items():
             if np.isfinite(comp.drift):
                 metrics.append(Metric("drift_" + _METRIC_UNSAFE.sub("_", col), comp.drift, stamp, 0))
-        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)])
+        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)], params=gate_params(result.policy))
+        log_data_input(c, run_id, result.data_source or spec_path, {"sha256": result.data_fingerprint,
+                       "rows": result.rows}, result.name, "evaluation")
         project_home().mkdir(parents=True, exist_ok=True)
         with tempfile.TemporaryDirectory(prefix="gate-", dir=project_home()) as scratch:
             _write_gate_folder(result, Path(scratch), verdict=verdict, by=by, reason=reason, spec_path=spec_path)
