@@ -23,7 +23,7 @@ import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.tasks.apply import lookup
-from entivec.tasks.apply.served import input_example_for, signature_for
+from entivec.tasks.apply.served import example_warnings_quiet, input_example_for, signature_for
 from entivec.tasks.lifecycle import lineage, registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
@@ -124,7 +124,7 @@ def register_version(
     """Register the run's vector set as a new version of ``spec.name`` (as a pyfunc lookup model)."""
     registry.client()
     vector_set = VectorSet.load(vector_set_folder)
-    with mlflow.start_run(run_id=run_id):
+    with mlflow.start_run(run_id=run_id), example_warnings_quiet():
         info = mlflow.pyfunc.log_model(
             name="lookup_model",
             # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
