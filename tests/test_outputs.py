@@ -282,3 +282,20 @@ def test_exports_name_their_source_and_separate_metadata_from_components(stones,
                                                                 ("id", "category", "count")]]
     np.testing.assert_array_equal(cut["spread"], confidence["spread"])
     assert manifest["columns"]["clarity"]["metadata_columns"] == ["id", "category", "count", "is_unknown"]
+
+
+def test_any_csv_for_people_gets_the_same_guard():
+    """The history's CSV (reasons typed by people) passes through the same OWASP rule; numbers are untouched."""
+    from entivec.tasks.apply.export import spreadsheet_safe
+
+    frame = pd.DataFrame({
+        "seq": [1, 2, 3], "reason": [RISKY[0], "first release", None], "gain": [-0.5, 0.25, float("nan")],
+        "by": ["@ops", "a.person", "-"],
+    })
+    safe = spreadsheet_safe(frame)
+    assert safe["reason"].tolist()[:2] == ["'" + RISKY[0], "first release"] and pd.isna(safe["reason"].iloc[2])
+    assert safe["by"].tolist() == ["'@ops", "a.person", "'-"]
+    pd.testing.assert_frame_equal(safe[["seq", "gain"]], frame[["seq", "gain"]])
+    assert frame["by"].tolist() == ["@ops", "a.person", "-"]  # the caller's frame is left alone
+    rows = list(csv.reader(safe.to_csv(index=False).splitlines()))  # Python's csv module reads it back
+    assert [r[3] for r in rows[1:]] == ["'@ops", "a.person", "'-"]

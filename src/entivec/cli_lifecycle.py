@@ -143,8 +143,10 @@ def history(
         return
     if fmt is HistoryFormat.json:
         text = audit.history_json(entries)
-    elif fmt is HistoryFormat.csv:
-        text = frame.to_csv(index=False)
+    elif fmt is HistoryFormat.csv:  # reasons are typed by people: no live formulas in a spreadsheet (OWASP)
+        from entivec.tasks.apply.export import spreadsheet_safe
+
+        text = spreadsheet_safe(frame).to_csv(index=False)
     else:
         text = frame.to_string(index=False)
     if out is None:

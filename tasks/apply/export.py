@@ -63,6 +63,15 @@ def neutralise_formulas(values: pd.Series) -> tuple[pd.Series, int]:
     return out, int(risky.sum())
 
 
+def spreadsheet_safe(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with every text column's formula-like cells neutralised, for any CSV a person may open."""
+    out = frame.copy()
+    for col in out.columns:
+        if pd.api.types.is_object_dtype(out[col]) or pd.api.types.is_string_dtype(out[col]):
+            out[col], _ = neutralise_formulas(out[col])
+    return out
+
+
 def export_source(
     name: str, version: str, run_id: str, vector_set: VectorSet, asked: str | None = None,
     aliases: Mapping[str, str] | None = None,
