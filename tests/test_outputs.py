@@ -74,6 +74,15 @@ def test_full_disk_leaves_the_export_folder_as_it_was(stones, tmp_path):
         assert "no space left" in str(caught.value) and str(folder) in str(caught.value)
         assert snapshot(folder) == before
         assert sorted(p.name for p in disk.iterdir()) == ["filler", "vectors"]
+        # the apply job's Parquet, written by Arrow's own file writer, meets the same full disk
+        from entivec.tasks.apply.batch import apply_file
+
+        stones[0].to_parquet(tmp_path / "stones.parquet", index=False)
+        with pytest.raises(OutputError) as caught:
+            apply_file(model_name="stones", version="1", run_id="r", vector_set=stones[1],
+                       input_path=tmp_path / "stones.parquet", output_path=folder / "applied.parquet")
+        assert caught.value.errno == errno.ENOSPC and "no space left" in str(caught.value)
+        assert snapshot(folder) == before
     finally:
         subprocess.run(["umount", str(disk)], check=False)
 
@@ -127,6 +136,38 @@ def test_file_size_limit_leaves_the_export_folder_as_it_was(stones, tmp_path):
     found = _in_subprocess(EXPORT_SCRIPT.format(source=str(source), folder=str(folder), limit=""), tmp_path)
     assert found["error"] is None
     assert json.loads((folder / "manifest.json").read_text())["format"] == "entivec.export/2"
+
+
+APPLY_SCRIPT = """
+    import json, resource
+    from entivec.schemas.vector_set import VectorSet
+    from entivec.tasks.apply.batch import apply_file
+    from entivec.tasks.apply.outputs import OutputError
+    vector_set = VectorSet.load({source!r})
+    resource.setrlimit(resource.RLIMIT_FSIZE, (200_000, 200_000))
+    try:
+        apply_file(model_name="stones", version="1", run_id="r", vector_set=vector_set, input_path={table!r},
+                   output_path={target!r}, chunk_rows=5_000)
+        print(json.dumps({{"error": None}}))
+    except OutputError as exc:
+        print(json.dumps({{"error": str(exc), "errno": exc.errno}}))
+"""
+
+
+def test_apply_output_past_a_size_limit_leaves_the_old_output(stones, tmp_path):
+    """The apply job's Parquet output under RLIMIT_FSIZE (EFBIG, as above): the earlier output stays as it was."""
+    frame, vector_set = stones
+    source = vector_set.save(tmp_path / "vector-set")
+    frame.to_csv(tmp_path / "stones.csv", index=False)  # about 3 MB, written before the limit
+    folder = tmp_path / "out"
+    folder.mkdir()
+    (folder / "vectors.parquet").write_bytes(b"an earlier output")
+    before = snapshot(folder)
+    found = _in_subprocess(APPLY_SCRIPT.format(source=str(source), table=str(tmp_path / "stones.csv"),
+                                               target=str(folder / "vectors.parquet")), tmp_path)
+    assert found["errno"] == errno.EFBIG, found
+    assert "cannot write the apply output vectors.parquet" in found["error"]
+    assert snapshot(folder) == before
 
 
 def test_folder_without_write_permission(stones, tmp_path_factory):

@@ -50,7 +50,7 @@ from entivec.tasks.apply.lookup import (
     category_type_problem,
     prepare,
 )
-from entivec.tasks.apply.outputs import OutputSet
+from entivec.tasks.apply.outputs import OutputError, OutputSet, output_error, writing_failed
 
 METADATA_PREFIX = "entivec."
 
@@ -255,6 +255,7 @@ def apply_file(
     started = time.perf_counter()
     buffers = ChunkBuffers()
     outputs = OutputSet(f"the apply output {output.name}")
+    part = table
     try:
         partial = outputs.path(output)
         # dictionary pages for the input's columns as pyarrow would write them; none for the vector columns,
@@ -280,6 +281,10 @@ def apply_file(
         raise ApplyInputError(f"{part.path}: {exc}") from exc
     except pa.ArrowInvalid as exc:  # a row the reader cannot parse, a value that breaks the column's type
         raise ApplyInputError(f"{part.path}: cannot be read as {part.format} ({exc})") from exc
+    except OSError as exc:  # a full disk, a size limit, no permission: the output's fault, not the input's
+        if isinstance(exc, OutputError) or not writing_failed(exc):
+            raise
+        raise output_error(outputs.what, output, exc) from exc
     finally:
         outputs.discard()  # after a commit only leftovers of a failure; the output itself stays
     result.seconds = time.perf_counter() - started

@@ -71,6 +71,11 @@ def error_number(exc: BaseException) -> int | None:
     return None
 
 
+def writing_failed(exc: BaseException) -> bool:
+    """Whether an error is one of those a write meets (full disk, quota, size limit, permission, read-only)."""
+    return error_number(exc) in _CAUSES
+
+
 def output_error(what: str, target: str | Path, exc: BaseException) -> OutputError:
     """An :class:`OutputError` naming what was being written, where, and why it failed."""
     code = error_number(exc)
@@ -217,7 +222,7 @@ class OutputSet:
             self.commit()
             return False
         self.discard()
-        if isinstance(exc, OSError) and not isinstance(exc, OutputError) and error_number(exc) in _CAUSES:
+        if isinstance(exc, OSError) and not isinstance(exc, OutputError) and writing_failed(exc):
             where = self._pending[-1][1] if self._pending else "its folder"
             raise output_error(self.what, where, exc) from exc
         return False
