@@ -114,7 +114,7 @@ def string_to_id_options(values: np.ndarray, vocab: Vocabulary, lookup: ColumnLo
     print(f"\nstring -> id, {n:,} values ({len(known):,} categories, {UNSEEN_SHARE:.0%} unseen):")
     for name, call in options.items():
         seconds = best_of(repeats, call)
-        print(f"  {name:<55s} {n / seconds / 1e6:8.1f} M rows/s")
+        print(f"  {name:<55s} {n / seconds / 1e6:8.1f} M rows/s  ({load()})")
 
 
 def throughput(values: np.ndarray, vector_set: VectorSet, lookup: ColumnLookup, chunk_rows: int, repeats: int):
@@ -159,10 +159,11 @@ def throughput(values: np.ndarray, vector_set: VectorSet, lookup: ColumnLookup, 
     bytes_per_row = dim * 4
     bound = bandwidth / bytes_per_row
     print(f"\nvalues -> {dim}-d float32 vectors, {n:,} rows (no file I/O), {os.cpu_count()} cores:")
-    print(f"  {'apply path (dictionary chunks -> Arrow vector columns)':<55s} {n / apply_s / 1e6:8.1f} M rows/s")
-    print(f"  {'pandas path (object strings -> DataFrame)':<55s} {n / pandas_s / 1e6:8.1f} M rows/s")
-    print(f"  {'pandas path (pandas 3 str strings -> DataFrame)':<55s} {n / str_s / 1e6:8.1f} M rows/s")
-    print(f"  {'straightforward Series.map(dict of lists)':<55s} {n / naive_s / 1e6:8.1f} M rows/s")
+    print(f"  {'apply path (dictionary chunks -> Arrow vector columns)':<55s} {n / apply_s / 1e6:8.1f} M rows/s  "
+          f"({load()})")
+    print(f"  {'pandas path (object strings -> DataFrame)':<55s} {n / pandas_s / 1e6:8.1f} M rows/s  ({load()})")
+    print(f"  {'pandas path (pandas 3 str strings -> DataFrame)':<55s} {n / str_s / 1e6:8.1f} M rows/s  ({load()})")
+    print(f"  {'straightforward Series.map(dict of lists)':<55s} {n / naive_s / 1e6:8.1f} M rows/s  ({load()})")
     print(f"  {'memory-bandwidth bound':<55s} {bound / 1e6:8.1f} M rows/s"
           f"  (np.copyto {bandwidth / 1e9:.1f} GB/s / {bytes_per_row} bytes written per row)")
     print(f"  apply path / straightforward: {naive_s / apply_s:6.1f}x   (target >= 15x)")
@@ -238,7 +239,7 @@ def memory(vector_set: VectorSet, categories: int, chunk_rows: int) -> None:
                 peaks[chunks] = (stats["peak_kib"] - stats["base_kib"]) / 1024
                 print(f"  {fmt:<8s} {stats['rows']:>12,} rows in {stats['chunks']:>3} chunk(s): "
                       f"+{peaks[chunks]:7.0f} MiB peak, {path.stat().st_size / 2**20:7.0f} MiB file, "
-                      f"{stats['rows'] / stats['seconds'] / 1e6:5.2f} M rows/s with file I/O")
+                      f"{stats['rows'] / stats['seconds'] / 1e6:5.2f} M rows/s with file I/O  ({load()})")
                 path.unlink()
             ratio = peaks[10] / peaks[1]
             verdict = "met" if ratio <= 2 else "NOT met"
