@@ -44,9 +44,13 @@ def _reference_neighbours(points: np.ndarray, k: int) -> tuple[np.ndarray, np.nd
     return idx[:, 1:], dist[:, 1:]
 
 
-def test_neighbours_match_scikit_learn():
+@pytest.mark.parametrize("search", ["k-d tree", "brute force"])
+def test_neighbours_match_scikit_learn(search, monkeypatch):
+    from entivec.tasks.present import review
     from entivec.tasks.present.review import nearest
 
+    if search == "brute force":
+        monkeypatch.setattr(review, "_TREE_MAX_DIMENSION", 0)
     points = _standardised(_mtcars(), ["mpg", "disp", "hp", "drat", "wt", "qsec"])
     idx, dist = nearest(points, 5)
     ref_idx, ref_dist = _reference_neighbours(points, 5)  # sklearn.neighbors.NearestNeighbors, brute force
@@ -145,8 +149,11 @@ def test_review_page_in_a_browser(entivec_home, browser, monkeypatch, tmp_path):
 
     from entivec.schemas.spec import spec_from_dict
     from entivec.tasks.lifecycle import registry
+    from entivec.tasks.present import review
     from entivec.tasks.present.review import GROUPS_FILE, publish_review_page, write_groups
 
+    # this page carries precomputed neighbours (the 50,000-category test below has the page measure them)
+    monkeypatch.setattr(review, "_VECTOR_BUDGET", 0)
     store = vf.register_two_versions(entivec_home)  # v1 production, v2 staging
     version, vs = _third_version(entivec_home, store.frame, monkeypatch)
     # the group file a train run would log: each colour's most frequent clarity (spec review.groups)

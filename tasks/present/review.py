@@ -3,10 +3,11 @@
 Per embedded column the page carries every known category (the unknown row 0 is left out: it stands for
 whatever was rare or missing) with its training count, its confidence when the vector set has one, its group
 (the spec's ``review.groups``), whether it is new against production, its k nearest neighbours with their
-Euclidean distances (exact, computed here, so the page needs no vectors and stays small with many categories)
-and its place on the first two principal axes. Categories production held and this version dropped are shown
-at production's place, aligned onto this version by orthogonal Procrustes on the shared categories. The
-gate's figures come from the evidence runs of every gate that judged the version.
+Euclidean distances (exact: measured by the page from the float32 vectors, or computed here and carried when
+a column's vectors hold too many numbers) and its place on the first two principal axes. Categories production
+held and this version dropped are shown at production's place, aligned onto this version by orthogonal
+Procrustes on the shared categories. The gate's figures come from the evidence runs of every gate that judged
+the version.
 """
 
 from __future__ import annotations
@@ -40,8 +41,13 @@ from entivec.tasks.present.review_page import review_page
 REVIEW_FOLDER = "review"
 REVIEW_PAGE = "review.html"
 GROUPS_FILE = "groups.json"
-# Rows of the distance matrix computed at once: bounds memory to CHUNK x categories floats.
-_CHUNK = 2048
+# Entries of the distance matrix computed at once (rows x categories): about 40 MB of float32.
+_BLOCK = 10_000_000
+# Vector components (categories x dimension) the page carries and measures distances from itself; a bigger
+# column carries its precomputed neighbours instead (categories x k indices and distances).
+_VECTOR_BUDGET = 4_000_000
+# Up to this vector length a k-d tree finds neighbours far faster than brute force; beyond it, it does not.
+_TREE_MAX_DIMENSION = 6
 
 
 # --- neighbours and the map ---------------------------------------------------------------------------------------
@@ -50,8 +56,9 @@ _CHUNK = 2048
 def nearest(points: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     """(n, k) indices and Euclidean distances of each row's k nearest other rows, nearest first (ties: lower index).
 
-    Candidates come from the squared-distance expansion in chunks of rows; a few spare candidates are then
-    measured directly and sorted, so rounding in the expansion cannot reorder near neighbours.
+    Candidates come from a k-d tree (scipy) when the vectors are short, else from the squared-distance expansion in
+    chunks of rows; a few spare candidates are then measured directly and sorted, so rounding cannot reorder near
+    neighbours. Both searches are exact.
     """
     x = np.asarray(points, dtype=np.float64)
     n = x.shape[0]
@@ -59,21 +66,40 @@ def nearest(points: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     if k < 1:
         return np.zeros((n, 0), np.int32), np.zeros((n, 0), np.float32)
     spare = min(k + 8, n - 1)
-    squared = np.einsum("ij,ij->i", x, x)
     idx = np.empty((n, k), np.int32)
     dist = np.empty((n, k), np.float32)
-    for start in range(0, n, _CHUNK):
-        stop = min(start + _CHUNK, n)
-        d2 = squared[start:stop, None] + squared[None, :] - 2.0 * (x[start:stop] @ x.T)
+    if x.shape[1] <= _TREE_MAX_DIMENSION:
+        from scipy.spatial import cKDTree
+
+        _, found = cKDTree(x).query(x, k=spare + 1)  # the row itself (or a copy of it) is among them
+        others = found != np.arange(n)[:, None]
+        cand = np.take_along_axis(found, np.argsort(~others, axis=1, kind="stable")[:, :spare], axis=1)
+        _measured(x, cand, np.arange(n), k, idx, dist)
+        return idx, dist
+    # Ranking within a row needs only |x_j|^2 - 2 x_i.x_j (|x_i|^2 is the same for the whole row), in float32:
+    # one matrix product and one in-place addition per chunk; the spare candidates absorb the rounding.
+    x32 = x.astype(np.float32)
+    squared = np.einsum("ij,ij->i", x32, x32)
+    chunk = max(1, _BLOCK // n)
+    for start in range(0, n, chunk):
+        stop = min(start + chunk, n)
+        d2 = x32[start:stop] @ x32.T
+        d2 *= -2.0
+        d2 += squared[None, :]
         d2[np.arange(stop - start), np.arange(start, stop)] = np.inf  # a category is not its own neighbour
         cand = np.argpartition(d2, spare - 1, axis=1)[:, :spare]
-        exact = np.empty(cand.shape)
-        for j in range(spare):  # one candidate column at a time: memory stays CHUNK x dimension
-            exact[:, j] = np.linalg.norm(x[cand[:, j]] - x[start:stop], axis=1)
-        order = np.lexsort((cand, exact), axis=1)[:, :k]
-        idx[start:stop] = np.take_along_axis(cand, order, axis=1)
-        dist[start:stop] = np.take_along_axis(exact, order, axis=1)
+        _measured(x, cand, np.arange(start, stop), k, idx, dist)
     return idx, dist
+
+
+def _measured(x: np.ndarray, cand: np.ndarray, rows: np.ndarray, k: int, idx: np.ndarray, dist: np.ndarray) -> None:
+    """Distances of ``rows`` to their candidates measured directly; the k nearest (then lower index) kept."""
+    exact = np.empty(cand.shape)
+    for j in range(cand.shape[1]):  # one candidate column at a time: memory stays rows x dimension
+        exact[:, j] = np.linalg.norm(x[cand[:, j]] - x[rows], axis=1)
+    order = np.lexsort((cand, exact), axis=1)[:, :k]
+    idx[rows] = np.take_along_axis(cand, order, axis=1)
+    dist[rows] = np.take_along_axis(exact, order, axis=1)
 
 
 def principal_map(points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -114,15 +140,19 @@ def column_data(
     vectors = np.asarray(vector_set.vectors[column], dtype=np.float64)[1:]
     categories = [str(c) for c in vocab.categories[1:]]
     counts = np.asarray(vocab.counts[1:], dtype=np.int64)
-    idx, dist = nearest(vectors, neighbours)
     xy, explained, mean, axes = principal_map(vectors)
     out = {
         "name": column, "categories": categories, "counts": _b64(counts.astype(np.float64), "<f8"),
-        "unknown_count": int(vocab.counts[0]), "dimension": int(vectors.shape[1]), "k": int(idx.shape[1]),
-        "neighbours": _b64(idx, "<i4"), "distances": _b64(dist, "<f4"), "xy": _b64(xy, "<f4"),
-        "explained": [float(v) for v in explained[:2]], "new": None, "dropped": [], "confidence": None,
-        "groups": None,
+        "unknown_count": int(vocab.counts[0]), "dimension": int(vectors.shape[1]),
+        "k": int(min(neighbours, max(len(categories) - 1, 0))), "vectors": None, "neighbours": None,
+        "distances": None, "xy": _b64(xy, "<f4"), "explained": [float(v) for v in explained[:2]], "new": None,
+        "dropped": [], "confidence": None, "groups": None,
     }
+    if vectors.size <= _VECTOR_BUDGET:  # the page measures distances itself, from the stored float32 vectors
+        out["vectors"] = _b64(vector_set.vectors[column][1:], "<f4")
+    else:  # too many numbers to carry: the neighbours travel instead
+        idx, dist = nearest(vectors, neighbours)
+        out["neighbours"], out["distances"] = _b64(idx, "<i4"), _b64(dist, "<f4")
     table_ = vector_set.confidence.get(column)
     if table_ is not None and len(table_) == vocab.size:
         ordered = table_.sort_values("id")

@@ -42,7 +42,8 @@ function buf(s){const b=atob(s),n=b.length,u=new Uint8Array(n);for(let i=0;i<n;i
  return u.buffer;}
 const PALETTE=["#1f77b4","#d95f02","#1b9e77","#7570b3","#e7298a","#66a61e","#e6ab02","#a6761d","#17becf","#8c564b"];
 const cols=D.columns.map(c=>{const o={name:c.name,cats:c.categories,k:c.k,explained:c.explained,dropped:c.dropped,
- counts:new Float64Array(buf(c.counts)),nb:new Int32Array(buf(c.neighbours)),dist:new Float32Array(buf(c.distances)),
+ counts:new Float64Array(buf(c.counts)),nb:c.neighbours?new Int32Array(buf(c.neighbours)):null,
+ dist:c.distances?new Float32Array(buf(c.distances)):null,vec:c.vectors?new Float32Array(buf(c.vectors)):null,
  xy:new Float32Array(buf(c.xy)),isNew:c.new?new Uint8Array(buf(c.new)):null,groups:c.groups,
  groupsNote:c.groups_note||null,unknown:c.unknown_count,dim:c.dimension};
  o.lower=o.cats.map(s=>s.toLowerCase());o.index=new Map(o.cats.map((s,i)=>[s,i]));
@@ -60,6 +61,14 @@ function confCells(c,i,row){if(!c.spread)return;row.append(el("td",fmt(c.rel[i],
  el("td",c.allFolds[i]?"yes":"no"));}
 function nameCell(c,i){const td=el("td"),a=el("a",c.cats[i],"cat");a.onclick=()=>pick(i);td.append(a);
  if(c.isNew&&c.isNew[i])td.append(el("span","new","badge new"));return td;}
+function near(c,i){if(!c.vec){const a=[],b=[];for(let r=0;r<c.k;r++){a.push(c.nb[i*c.k+r]);b.push(c.dist[i*c.k+r]);}
+ return [a,b];}
+ // exact: squared distances in double precision from the float32 vectors; ties keep the lower index first
+ const d=c.dim,n=c.cats.length,k=c.k,bi=[],bd=[];for(let j=0;j<n;j++){if(j===i)continue;let s=0;
+ for(let q=0;q<d;q++){const t=c.vec[i*d+q]-c.vec[j*d+q];s+=t*t;}
+ if(bi.length<k||s<bd[bd.length-1]){let p=bi.length<k?bi.length:k-1;if(bi.length<k){bi.push(j);bd.push(s);}
+  while(p>0&&bd[p-1]>s){bi[p]=bi[p-1];bd[p]=bd[p-1];p--;}bi[p]=j;bd[p]=s;}}
+ return [bi,bd.map(Math.sqrt)];}
 function pick(i){const c=cols[cur];picked=i;$("search").value=c.cats[i];$("suggestions").replaceChildren();
  const d=$("detail");d.replaceChildren();const h=el("h3",c.cats[i]);
  if(c.isNew&&c.isNew[i])h.append(el("span","new since production v"+D.production_version,"badge new"));d.append(h);
@@ -71,8 +80,9 @@ function pick(i){const c=cols[cur];picked=i;$("search").value=c.cats[i];$("sugge
  const tb=el("table");tb.id="neighbours";const hr=el("tr");
  ["rank","nearest category","distance","training rows"].concat(c.spread?["relative spread","in every fold"]:[])
   .forEach(s=>hr.append(el("th",s)));const th=el("thead");th.append(hr);tb.append(th);const body=el("tbody");
- for(let r=0;r<c.k;r++){const j=c.nb[i*c.k+r],row=el("tr");row.append(el("td",String(r+1),"num"),nameCell(c,j),
-  el("td",fmt(c.dist[i*c.k+r],6),"num"),el("td",int(c.counts[j]),"num"));confCells(c,j,row);body.append(row);}
+ const [ni,nd]=near(c,i);for(let r=0;r<ni.length;r++){const j=ni[r],row=el("tr");row.append(el("td",String(r+1),
+  "num"),nameCell(c,j),el("td",fmt(nd[r],6),"num"),el("td",int(c.counts[j]),"num"));confCells(c,j,row);
+  body.append(row);}
  tb.append(body);d.append(tb);draw();}
 function suggest(){const c=cols[cur],q=$("search").value.trim().toLowerCase(),ul=$("suggestions");
  ul.replaceChildren();if(!q)return;const exact=[],pre=[],sub=[];
