@@ -32,7 +32,7 @@ h1{font-size:1.6em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}h2{font-s
 h3{font-size:1.05em}table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
 table{max-width:100%}th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top;
 overflow-wrap:anywhere}
-th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
+th{background:#f3f5f7;overflow-wrap:normal}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
 .verdict{font-size:1.15em;padding:.5em .8em;border-radius:6px;display:inline-block}
 .verdict.pass{background:#dafbe1}.verdict.fail{background:#ffebe9}
@@ -59,6 +59,8 @@ def image(data: bytes, alt: str) -> str:
 
 
 def _cell(value: Any) -> str:
+    if isinstance(value, (bool, np.bool_)):
+        return f"<td>{'yes' if value else 'no'}</td>"
     if isinstance(value, (float, np.floating)):
         text = "" if not np.isfinite(value) else f"{value:.6g}"
         return f'<td class="num">{text}</td>'

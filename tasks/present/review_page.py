@@ -17,7 +17,7 @@ body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;mar
 color:#1d232a;line-height:1.4;padding:0 1em}h1{font-size:1.5em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}
 h2{font-size:1.2em;margin-top:1.6em}h3{font-size:1em}table{border-collapse:collapse;margin:.5em 0;font-size:.88em;
 max-width:100%}th,td{border:1px solid #d0d7de;padding:.2em .5em;text-align:left;vertical-align:top;
-overflow-wrap:anywhere}th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
+overflow-wrap:anywhere}th{background:#f3f5f7;overflow-wrap:normal}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
 .muted{color:#57606a;font-size:.9em}.caution{background:#fff8c5;border:1px solid #d4a72c;padding:.6em .8em;
 border-radius:6px}.grid{display:flex;flex-wrap:wrap;gap:1.2em}.pane{flex:1 1 430px;min-width:0}
@@ -123,7 +123,7 @@ function legend(){const c=cols[cur],lg=$("legend");lg.replaceChildren();
   if(c.groups.names.length>PALETTE.length)item("#888888","other "+c.groups.column+" values");
   item("#bbbbbb","(no group)");}
  else item(PALETTE[0],"categories");
- if(c.isNew)item("#116329","new since production v"+D.production_version,"ring");
+ if(c.isNew&&c.isNew.some(v=>v))item("#116329","new since production v"+D.production_version,"ring");
  if(c.dropped.length)item("#cf222e","dropped since production v"+D.production_version+
   " (production's vector, aligned)","x");
  lg.append(el("div","Point area grows with the training rows of the category; "+
