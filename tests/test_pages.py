@@ -317,3 +317,21 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
     text = diff.read_text(encoding="utf-8")
     assert "Top movers of 'color' (categories with 30+ training rows in both versions)" in text
     assert f"new in version {version} (1): I1" in text  # clarity I1: rare in version 1, its own row in version 3
+
+
+@pytest.mark.integration
+def test_review_command_writes_the_page(entivec_home, tmp_path):
+    import entivec_test_vector_fixtures as vf
+    from typer.testing import CliRunner
+
+    from entivec.cli import app
+
+    vf.register_two_versions(entivec_home)
+    out = tmp_path / "review.html"
+    result = CliRunner().invoke(app, ["review", vf.MODEL, "staging", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    text = out.read_text(encoding="utf-8")
+    assert "stones version 2: review" in text and "production (version 1)" in text
+    missing = CliRunner().invoke(app, ["review", vf.MODEL, "7", "--out", str(out)])
+    assert missing.exit_code == 2 and "7" in missing.output  # a user error: the registry's message, no traceback
+    assert "Traceback" not in missing.output
