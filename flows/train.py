@@ -23,7 +23,7 @@ from entivec.tasks.lifecycle import audit, drift, outcomes, profile, registry
 from entivec.tasks.lifecycle import rows as held_rows
 from entivec.tasks.lifecycle.bundle import BundleInputs, write_bundle_task
 from entivec.tasks.lifecycle.track import record_run_task, register_version_task
-from entivec.tasks.present import plots, report
+from entivec.tasks.present import plots, report, review
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import predict
@@ -166,6 +166,7 @@ def train(
         )
         vector_folder = write_bundle_task(bundle, workdir)
         plots.write_run_plots(bundle, workdir)
+        review.write_groups(raw, spec, workdir)  # colours of the review page's map (spec review.groups)
         if drift_report is not None:  # the check it passed travels with the run
             drift.write_report(drift_report, workdir / drift.REPORT_FOLDER)
         held_rows.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
@@ -204,6 +205,7 @@ def train(
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
     report.publish_version_report_task(spec.name, version)
+    review.publish_review_page_task(spec.name, version)
 
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,

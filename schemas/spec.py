@@ -15,6 +15,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from entivec.schemas.promotion import PromotionSpec
+from entivec.schemas.review import ReviewSpec
 
 SPEC_VERSION = 1
 MODEL_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}$"
@@ -244,6 +245,7 @@ class Spec(_Strict):
     evaluation: EvaluationSpec = EvaluationSpec()
     promotion: PromotionSpec = PromotionSpec()
     drift: DriftSpec = DriftSpec()
+    review: ReviewSpec = ReviewSpec()
 
     @model_validator(mode="after")
     def _columns_consistent(self) -> Spec:
@@ -268,6 +270,9 @@ class Spec(_Strict):
         for name in self.drift.ignore:
             if name not in known:
                 raise ValueError(f"drift.ignore names column {name!r}, which the spec does not declare")
+        for name in self.review.groups:
+            if name not in self.embed_names:
+                raise ValueError(f"review.groups names column {name!r}, which is not in columns.embed")
         return self
 
     # convenience -----------------------------------------------------------------------------------------------
@@ -296,10 +301,10 @@ class Spec(_Strict):
     def content_hash(self) -> str:
         """SHA-256 of the spec's canonical JSON: what identifies the recipe of a vector set.
 
-        The ``drift`` section is left out: its thresholds decide whether a retrain runs, not what it makes, and
-        specs written before it existed keep their hash.
+        The ``drift`` and ``review`` sections are left out: the first decides whether a retrain runs, the second
+        what the review page shows, neither what a run makes; specs written before them keep their hash.
         """
-        recipe = self.model_dump(mode="json", exclude={"drift"})
+        recipe = self.model_dump(mode="json", exclude={"drift", "review"})
         canonical = json.dumps(recipe, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canonical.encode()).hexdigest()
 

@@ -300,7 +300,7 @@ def _register_command_groups() -> None:
     """Commands that live beside the flows they drive register themselves here."""
     import importlib
 
-    for module in ("entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule"):
+    for module in ("entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule", "entivec.cli_review"):
         importlib.import_module(module).register(app)
 
 
