@@ -184,10 +184,12 @@ def guarded(call: Callable[..., Any], *args: Any, uri: str | None = None, **kwar
 
 
 class _QuietStoreErrors(logging.Filter):
-    """MLflow logs a full traceback for every SQLite operational error; ours says it in one line instead."""
+    """MLflow logs a full traceback for every SQLite operational error, and urllib3 a warning for every retry of
+    an HTTP call; ``RegistryUnavailable`` says it in one line instead."""
 
     def filter(self, record: logging.LogRecord) -> bool:
-        return not str(record.msg).startswith("SQLAlchemy database error")
+        text = str(record.msg)
+        return not (text.startswith("SQLAlchemy database error") or text.startswith("Retrying ("))
 
 
 _quiet = _QuietStoreErrors()
@@ -217,9 +219,9 @@ def client() -> Client:
     uri = tracking_uri()
     if uri.startswith("sqlite:///"):
         Path(uri.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
-    logger = logging.getLogger("mlflow.store.db.utils")
-    if _quiet not in logger.filters:
-        logger.addFilter(_quiet)
+    for logger in (logging.getLogger("mlflow.store.db.utils"), logging.getLogger("urllib3.connectionpool")):
+        if _quiet not in logger.filters:
+            logger.addFilter(_quiet)
     return Client(uri, os.environ.get("MLFLOW_REGISTRY_URI") or uri)
 
 
