@@ -340,7 +340,7 @@ class Session:
 
         A version whose owner process still runs is left alone. One that holds an alias its settled ``train``
         entry gave it lacked only the final mark, so it is completed; any other is removed (with any alias on
-        it). Runs left RUNNING by a dead process of this machine are ended KILLED.
+        it).
         """
         touched: list[AuditEntry] = []
         aliases = self.aliases()
@@ -365,7 +365,6 @@ class Session:
                 touched.append(self.record(
                     event="incomplete_removed", alias=held[0] if held else "-", from_version=version,
                     to_version=None, by="entivec", reason=note, details={"run_id": mv.run_id}))
-        registry.end_abandoned_runs(self.name)
         return touched
 
 
@@ -377,6 +376,7 @@ def _v(version: Any) -> str:
 def locked(name: str, *, timeout: float = 300.0, repair: bool = True) -> Iterator[Session]:
     """Hold ``name``'s lifecycle lock; the history is repaired first unless ``repair`` is False."""
     registry.check_name(name)
+    registry.end_abandoned_runs(name)  # runs a killed process left RUNNING, even before any version exists
     registry.list_versions(name)  # an unknown model gets a clear message before any lock is taken
     with lifecycle_lock(name, timeout):
         session = Session(name)

@@ -105,12 +105,14 @@ def experiment_for(name: str) -> str:
 
 
 def check_store(name: str) -> str:
-    """Prove the store answers and takes writes before expensive work: writes a tag on the model's experiment.
+    """Prove the store answers and takes writes before expensive work: writes a tag on the model's experiment,
+    and ends the runs a killed earlier command left RUNNING.
 
     Returns the experiment id; raises ``RegistryUnavailable`` naming the server and the cause.
     """
     experiment_id = experiment_for(name)
     client().set_experiment_tag(experiment_id, f"{TAG_PREFIX}store_checked", datetime.now(UTC).isoformat())
+    end_abandoned_runs(name)  # a train killed earlier may have left its run RUNNING
     return experiment_id
 
 
