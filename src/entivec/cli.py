@@ -308,8 +308,14 @@ _register_command_groups()
 
 
 def main() -> None:
+    from entivec import stopping
+
+    stopping.install()  # SIGTERM / SIGINT end the command cleanly (143 / 130); no temporary server outlives it
     try:
         app()
+    except stopping.Stopped as stop:
+        errors.print(f"stopped by {stop.signal_name}")
+        stopping.finish(stop)
     except KeyboardInterrupt:
         errors.print("interrupted")
         sys.exit(130)
