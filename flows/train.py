@@ -12,6 +12,7 @@ from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
 from entivec.settings import project_home
+from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
@@ -145,15 +146,25 @@ def train(
         network_pred = targets.inverse(network_pred, spec.target.transform)
     network_metrics = task_metrics(spec.target.task, y_test, network_pred)
 
-    rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
-    subset = train_inputs.take(rows)
+    # Bounded evidence: the fold networks train on a seeded sample of at most evaluation.max_fold_rows rows, the
+    # downstream models on a seeded sample of that sample (max_train_rows) and are scored on a seeded sample of
+    # the test rows (max_test_rows); only the downstream rows' out-of-fold vectors are kept.
+    ev = spec.evaluation
+    fold_rows = capped_rows(len(train_rows), ev.max_fold_rows, ev.seed)
+    picked = capped_rows(len(fold_rows), ev.max_train_rows, ev.seed)
+    rows = fold_rows[picked]
+    tested = capped_rows(len(test_rows), ev.max_test_rows, ev.seed)
     # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
-    oof = cross_fit_vectors(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
-    in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
-    on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
+    spread = FoldSpread()
+    oof = cross_fit_vectors(train_inputs.take(fold_rows), y_train[fold_rows], spec, cardinalities, sizes,
+                            result.vectors, spread=spread, keep=picked)
+    confidence = confidence_tables(spread, vocabularies, result.vectors)
+    in_sample = vectors_for_ids(train_inputs.cat_ids[rows], result.vectors, spec.embed_names)
+    on_test = vectors_for_ids(test_inputs.cat_ids[tested], result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
-        train_rows.iloc[rows], test_rows, spec,
-        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred,
+        train_rows.iloc[rows], test_rows.iloc[tested], spec,
+        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred[tested],
+        n_available=len(train_rows), n_test_available=len(test_rows),
     )
 
     project_home().mkdir(parents=True, exist_ok=True)
@@ -162,7 +173,7 @@ def train(
         bundle = BundleInputs(
             spec, spec_text, fingerprint, cleaned.ledger, cleaned.quarantine, vocabularies, encoder,
             result, evidence, network_metrics, y_test, network_pred,
-            profile=profile.data_profile_task(raw, train_rows, spec),
+            profile=profile.data_profile_task(raw, train_rows, spec), confidence=confidence,
         )
         vector_folder = write_bundle_task(bundle, workdir)
         plots.write_run_plots(bundle, workdir)

@@ -185,7 +185,10 @@ class SplitSpec(_Strict):
 
 
 class TrainingSpec(_Strict):
-    epochs: Annotated[int, Field(ge=1, le=10_000)] = 30
+    # None: an epoch budget from the table's size (see tasks/train/trainer.py: epoch_budget): at least 30 epochs and
+    # at least `step_budget` optimizer steps, so a small table trains until early stopping ends it.
+    epochs: Annotated[int, Field(ge=1, le=10_000)] | None = None
+    step_budget: Annotated[int, Field(ge=1)] = 6_000
     batch_size: Annotated[int, Field(ge=1)] = 1024
     learning_rate: Annotated[float, Field(gt=0, le=1)] = 3e-3
     weight_decay: Annotated[float, Field(ge=0)] = 0.0
@@ -207,7 +210,12 @@ class EvaluationSpec(_Strict):
         "hist_gradient_boosting",
     ]
     onehot_max_categories: Annotated[int, Field(ge=2)] = 64
+    # Rows the downstream models train on (a seeded sample of the training rows) and are scored on (of the test
+    # rows), and rows the fold networks train on: caps, so the evidence stops growing with the table
+    # (benchmarks/bench_evidence.py measures the choice; README "Evidence cost").
     max_train_rows: Annotated[int, Field(ge=100)] | None = 200_000
+    max_test_rows: Annotated[int, Field(ge=100)] | None = 50_000
+    max_fold_rows: Annotated[int, Field(ge=100)] | None = 200_000
     seed: int = 0
 
 
