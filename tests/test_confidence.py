@@ -8,7 +8,6 @@ long tail of rarely seen planes.
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy.spatial.distance import pdist
 from scipy.stats import ortho_group, spearmanr

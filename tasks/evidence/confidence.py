@@ -1,8 +1,9 @@
 """How well each category's vector is determined: the spread of its aligned fold vectors around its full-data vector.
 
-The out-of-fold evidence already trains one network per fold; each fold's vectors are rotated onto the full-data
-vectors (orthogonal Procrustes, ``align_to``, weighted by the fold's training counts). A category whose vector comes out nearly the same from every fold
-is well determined by the data; one whose fold vectors scatter is not. ``FoldSpread`` collects, fold by fold,
+The out-of-fold evidence already trains one network per fold; each fold's vectors are rotated onto the
+full-data vectors (orthogonal Procrustes, ``align_to``, weighted by the fold's training counts). A category
+whose vector comes out nearly the same from every fold is well determined by the data; one whose fold vectors
+scatter is not. ``FoldSpread`` collects, fold by fold,
 the squared distance of each category's aligned fold vector from its full-data vector, without keeping the fold
 matrices (a 50,000-category column with five folds would otherwise hold five extra tables), and
 ``confidence_table`` turns the sums into the table ``VectorSet.confidence`` holds (``CONFIDENCE_COLUMNS``):

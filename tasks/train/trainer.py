@@ -339,8 +339,8 @@ def fit_network(
     ``y`` is on the transformed scale (regression) or 0/1 (binary). Without ``valid``, a seeded
     ``training.validation_fraction`` of the rows is held out for early stopping. Training runs at most
     ``epoch_budget`` epochs and stops after ``training.patience`` epochs without a lower validation loss; the
-    weights of the best epoch are restored. ``init_vectors`` warm-starts tables column by column (rows beyond a given matrix keep their
-    random start, so a vocabulary that grew still trains its new rows).
+    weights of the best epoch are restored. ``init_vectors`` warm-starts tables column by column (rows beyond a
+    given matrix keep their random start, so a vocabulary that grew still trains its new rows).
     """
     started = time.perf_counter()
     if task not in ("regression", "binary"):
