@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 import tempfile
 from dataclasses import dataclass
@@ -11,11 +12,13 @@ from prefect import flow, get_run_logger, task
 from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
+from entivec.schemas.vector_set import column_file_stem
 from entivec.settings import project_home
 from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
+from entivec.tasks.evidence.stability import seed_stability
 from entivec.tasks.ingest.clean import clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint as fingerprint_of
 from entivec.tasks.ingest.read import ingest
@@ -30,6 +33,8 @@ from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import predict
 from entivec.tasks.train.trainer import train_vectors
 from entivec.tasks.train.vocabulary import build_vocabularies_task
+
+RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold networks use seed + 1 + fold)
 
 
 @dataclass
@@ -141,6 +146,15 @@ def train(
         train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
         training=spec.training, task=spec.target.task, init_vectors=init_vectors,
     )
+    stability = {}
+    if spec.evaluation.seed_check:  # the same rows and start, another seed: what a reseed alone changes
+        reseeded = train_vectors.with_options(task_run_name="train-vectors-reseeded")(
+            train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
+            training=spec.training.model_copy(update={"seed": spec.training.seed + RESEED, "progress": False}),
+            task=spec.target.task, init_vectors=init_vectors,
+        )
+        stability = seed_stability(vocabularies, result.vectors, reseeded.vectors)
+        del reseeded
     network_pred = predict(result.model, test_inputs, spec.target.task)
     if spec.target.task == "regression":
         network_pred = targets.inverse(network_pred, spec.target.transform)
@@ -185,6 +199,10 @@ def train(
             for key, value in row.items():
                 if key in network_metrics:
                     metrics[f"{row['model']}_{row['features']}_{key}"] = value
+        for col, figures in stability.items():  # MLflow metrics per column, e.g. seed_neighbour_overlap.dest
+            metrics.update({f"{key}.{column_file_stem(col)}": value for key, value in figures.items()})
+        if stability:
+            (workdir / "evidence" / "seed_stability.json").write_text(json.dumps(stability, indent=1, default=float))
         if drift_report is not None:
             metrics["drift_max_psi"] = drift_report.largest("psi")
             metrics["drift_max_new_category_share"] = drift_report.largest("new_category_share")

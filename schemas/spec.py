@@ -216,6 +216,9 @@ class EvaluationSpec(_Strict):
     max_train_rows: Annotated[int, Field(ge=100)] | None = 200_000
     max_test_rows: Annotated[int, Field(ge=100)] | None = 50_000
     max_fold_rows: Annotated[int, Field(ge=100)] | None = 200_000
+    # Train a second network on the same rows with another seed and log how far the two agree per column
+    # (tasks/evidence/stability.py): how much of a version-to-version change a reseed alone makes.
+    seed_check: bool = True
     seed: int = 0
 
 
@@ -236,6 +239,19 @@ class DriftSpec(_Strict):
     ignore: list[str] = Field([], description="Columns reported but never a reason to stop.")
 
 
+class ShrinkSpec(_Strict):
+    """Shrink uncertain vectors at apply time (tasks/apply/lookup.py); recorded in each version, off by default.
+
+    A category's vector moves toward ``rule``'s target (the unknown row, or the count-weighted mean of the known
+    vectors) with weight r² / (r² + scale²), r its relative spread across the fold networks; above
+    ``replace_above`` (when set) it is replaced by the target.
+    """
+
+    rule: Literal["off", "toward_unknown", "toward_mean"] = "off"
+    scale: Annotated[float, Field(gt=0)] = 1.0
+    replace_above: Annotated[float, Field(gt=0)] | None = None
+
+
 class Spec(_Strict):
     """A whole dataset spec. ``name`` is the registered model that each trained vector set becomes a version of."""
 
@@ -251,6 +267,7 @@ class Spec(_Strict):
     training: TrainingSpec = TrainingSpec()
     evaluation: EvaluationSpec = EvaluationSpec()
     promotion: PromotionSpec = PromotionSpec()
+    shrink: ShrinkSpec = ShrinkSpec()
     drift: DriftSpec = DriftSpec()
 
     @model_validator(mode="after")

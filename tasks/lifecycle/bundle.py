@@ -90,6 +90,7 @@ def write_bundle(b: BundleInputs, folder: Path) -> Path:
             "network_metrics": b.network_metrics,
             "primary_metric": b.evidence.primary_metric,
             "vectors_help": b.evidence.vectors_help,
+            "shrink": b.spec.shrink.model_dump(),  # applied by every consumer (tasks/apply/lookup.py)
         },
         dict(b.confidence or {}),
     ).save(vector_folder)
