@@ -81,6 +81,10 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert run.info.status == "FINISHED"
     assert run.data.tags["entivec.data_fingerprint"]
     assert "epoch_valid_loss" in run.data.metrics and "network_rmse" in run.data.metrics
+    # Seed stability of every embedded column, logged with the run (a second network, another seed, same rows).
+    for col in ("clarity", "color"):
+        assert 0.0 <= run.data.metrics[f"seed_neighbour_overlap.{col}"] <= 1.0
+        assert run.data.metrics[f"seed_aligned_distance.{col}"] >= 0.0
     artifacts = {a.path for a in client.list_artifacts(outcome.run_id)}
     assert {"spec.yaml", "data", "vector_set", "network", "evidence", "plots", "summary.md"} <= artifacts
     plots = {a.path for a in client.list_artifacts(outcome.run_id, "plots")}
