@@ -12,10 +12,11 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, Field, ValidationError, field_validator, model_validator
 
 from entivec.schemas.promotion import PromotionSpec
 from entivec.schemas.review import ReviewSpec
+from entivec.schemas.strict import BOOL_FOR_NUMBER, Strict
 
 SPEC_VERSION = 1
 MODEL_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}$"
@@ -25,8 +26,7 @@ class SpecError(ValueError):
     """A spec file that cannot be used; the message names the file, the key and what was expected."""
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+_Strict = Strict  # unknown keys, booleans for numbers and NaN are errors in every section (schemas/strict.py)
 
 
 # --- embedding sizes -------------------------------------------------------------------------------------------
@@ -213,7 +213,7 @@ class EvaluationSpec(_Strict):
     # fitted 20,000 rows in 1.5 s where a 100-tree random forest took 19-25 s with a worse RMSE; the linear
     # model adds a second, cheap model family. Random forest stays available by name.
     folds: Annotated[int, Field(ge=2, le=20)] = 3
-    models: list[Literal["random_forest", "hist_gradient_boosting", "linear"]] = [
+    models: Annotated[list[Literal["random_forest", "hist_gradient_boosting", "linear"]], Field(min_length=1)] = [
         "hist_gradient_boosting",
         "linear",
     ]
@@ -408,11 +408,36 @@ def format_validation_error(error: ValidationError, path: Path) -> str:
             lines.append(f"  - unknown key '{key}'{hint}{allowed}")
         elif item["type"] == "missing":
             lines.append(f"  - missing required key '{key}'")
+        elif item["type"] == BOOL_FOR_NUMBER:
+            inner = item["ctx"]["key"]
+            full = inner if key == "(top level)" else f"{key}.{inner}"
+            lines.append(f"  - key '{full}': takes a number, got the boolean {item['ctx']['value']}")
         else:
             got = item.get("input")
             shown = repr(got) if not isinstance(got, dict) else "a mapping"
             lines.append(f"  - key '{key}': {item['msg']} (got {shown})")
     return "\n".join(lines)
+
+
+class _DuplicateKey(Exception):
+    pass
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """YAML's safe loader, except that a key written twice in one mapping is an error (YAML 1.2 says keys are
+    unique; PyYAML silently keeps the last one, so a repeated section would replace the first)."""
+
+    def construct_mapping(self, node, deep=False):
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=True)
+            line = key_node.start_mark.line + 1
+            if isinstance(key, typing.Hashable) and key in seen:
+                raise _DuplicateKey(f"key {key!r} appears twice in one mapping (lines {seen[key]} and {line}); "
+                                    "keep one")
+            if isinstance(key, typing.Hashable):
+                seen[key] = line
+        return super().construct_mapping(node, deep=deep)
 
 
 def load_spec(path: str | Path) -> Spec:
@@ -425,7 +450,9 @@ def load_spec(path: str | Path) -> Spec:
     except (OSError, UnicodeDecodeError) as exc:
         raise SpecError(f"spec file {path}: cannot be read ({exc})") from None
     try:
-        raw = yaml.safe_load(text)
+        raw = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader that refuses repeated keys
+    except _DuplicateKey as exc:
+        raise SpecError(f"spec file {path}: {exc}") from None
     except yaml.YAMLError as exc:
         raise SpecError(f"spec file {path}: not valid YAML ({exc})") from None
     if not isinstance(raw, dict):
