@@ -33,6 +33,7 @@ from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import (
+    ROW_ID,
     Condition,
     DropMissingRule,
     FillRule,
@@ -53,6 +54,8 @@ from entivec.tasks.ingest.read import (
     BOOKKEEPING,
     EXAMPLES,
     QUARANTINE_STEM,
+    RAGGED,
+    RAW_LINE,
     REASONS,
     SOURCE_FILE,
     SOURCE_ROW,
@@ -144,15 +147,22 @@ _DETAIL = {
     "range": "outside the column's declared min/max (inclusive)",
     "infinite": "infinite value",
     "time": "cannot be read as a time",
+    "integer": "not a whole number >= 0, but the column is declared a count (integer: true)",
+    "domain": "outside the domain of the column's transform (log needs > 0, log1p needs > -1)",
     "duplicate_id": "id shared with another row: every row of a shared id is quarantined",
 }
 
 
-def _validate(raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections) -> pd.DataFrame:
-    """Validate lazily with the spec's pandera schema; return the typed rows that pass (index = raw position)."""
+def _validate(
+    raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections, skip: np.ndarray | None = None
+) -> pd.DataFrame:
+    """Validate lazily with the spec's pandera schema; return the typed rows that pass (index = raw position).
+
+    Rows at the positions ``skip`` (already quarantined) are left out."""
     schema = build_schema(spec)
     names = list(schema.columns)
-    work = raw[[*names, *BOOKKEEPING]].copy()
+    work = raw[[*names, SOURCE_FILE, SOURCE_ROW]]
+    work = (work.drop(index=raw.index[skip]) if skip is not None and len(skip) else work).copy()
     try:
         return schema.validate(work, lazy=True)
     except pa.errors.SchemaErrors as exc:
@@ -326,7 +336,8 @@ def _model_ready(
     A categorical feature may be missing (it maps to the unknown id) unless the spec declares it not nullable.
     """
     strict_text = [c.name for c in (*spec.columns.embed, *spec.columns.onehot) if not c.nullable]
-    needed = [*strict_text, *spec.numeric_names, spec.target.column]
+    numeric = [c.name for c in spec.columns.numeric if c.impute == "none"]
+    needed = [*strict_text, *numeric, spec.target.column]
     if spec.split.method == "time" and spec.split.time_column and spec.split.time_column not in needed:
         needed.append(spec.split.time_column)
     failing = np.zeros(len(frame), dtype=bool)
@@ -343,6 +354,69 @@ def _model_ready(
     return frame[~failing]
 
 
+def with_row_ids(raw: pd.DataFrame, spec: Spec, ledger: Ledger | None = None, first: int = 1) -> pd.DataFrame:
+    """Without an ``id_column`` in the spec, number the rows in read order (``first``, ``first`` + 1, ...) as ids."""
+    if spec.id_column is not None or ROW_ID in raw.columns:
+        return raw
+    if ledger is not None:
+        ledger.record(
+            "row_number_as_id", "report", len(raw),
+            "the spec names no id_column: rows are numbered in read order (files in sorted path order) and the "
+            "number is the id; such ids name rows of this read only, not the same record in a later drop",
+        )
+    return raw.assign(**{ROW_ID: pd.Series(np.arange(first, first + len(raw)), index=raw.index).astype(str)})
+
+
+def _ragged(raw: pd.DataFrame, ledger: Ledger, rejected: _Rejections) -> np.ndarray:
+    """Positions of CSV lines with the wrong number of fields (see csvfile.csv_batches), quarantined here."""
+    if RAW_LINE not in raw.columns:
+        return np.zeros(0, dtype=np.int64)
+    positions = np.flatnonzero(raw[RAW_LINE].notna().to_numpy())
+    if len(positions):
+        ledger.record(
+            RAGGED, "quarantine", len(positions),
+            f"a line with too few or too many fields (RFC 4180: every line has the header's field count); the "
+            f"line is kept in {RAW_LINE}; {examples(raw, positions)}",
+        )
+        rejected.add(positions, RAGGED)
+        ledger.rows_quarantined += len(positions)
+    return positions
+
+
+def _whitespace_merges(raw: pd.DataFrame, spec: Spec, ledger: Ledger, skip: np.ndarray) -> None:
+    """A ledger line per category column where spellings differing only by outer spaces became one category."""
+    keep = np.ones(len(raw), dtype=bool)
+    keep[skip] = False
+    for column in [*spec.embed_names, *spec.onehot_names]:
+        values = raw[column]
+        if pd.api.types.is_numeric_dtype(values.dtype) or pd.api.types.is_bool_dtype(values.dtype):
+            continue
+        text = values[keep].astype("string")
+        trimmed = text.str.strip()
+        padded = (text != trimmed).fillna(False).to_numpy(dtype=bool) & (trimmed != "").fillna(False).to_numpy()
+        if not padded.any():
+            continue
+        variants = pd.DataFrame({"as_read": text[padded], "category": trimmed[padded]}).drop_duplicates()
+        shown = "; ".join(f"{a!r} -> {c!r}" for a, c in variants.head(EXAMPLES).itertuples(index=False))
+        ledger.record(
+            f"whitespace:{column}", "report", int(padded.sum()),
+            f"values with leading or trailing spaces read as their trimmed spelling: {len(variants)} spelling(s) "
+            f"merged into {variants['category'].nunique()} categor(ies), e.g. {shown}",
+        )
+
+
+def _imputed(frame: pd.DataFrame, spec: Spec, ledger: Ledger) -> None:
+    for col in spec.columns.numeric:
+        if col.impute == "none":
+            continue
+        missing = int(frame[col.name].isna().sum())
+        ledger.record(
+            f"impute:{col.name}", "report", missing,
+            f"missing {col.name} kept; the network input is filled with the training rows' {col.impute} (stored in "
+            f"the vector set's encoder) and an indicator input '{col.name}=missing' is added",
+        )
+
+
 def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = None) -> CleanResult:
     """Validate, apply the spec's rules in order, and check model-readiness; every row is used or quarantined.
 
@@ -353,10 +427,13 @@ def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = 
     check_spec_fits(spec)
     raw = with_bookkeeping(raw)
     files = list(files) if files is not None else [str(f) for f in pd.unique(raw[SOURCE_FILE])]
-    _require_columns(raw, spec, files)
     ledger = Ledger(rows_in=len(raw), files=files)
+    raw = with_row_ids(raw, spec, ledger)
+    _require_columns(raw, spec, files)
     rejected = _Rejections()
-    typed = _validate(raw, spec, ledger, rejected)
+    ragged = _ragged(raw, ledger, rejected)
+    _whitespace_merges(raw, spec, ledger, ragged)
+    typed = _validate(raw, spec, ledger, rejected, skip=ragged)
     for i, rule in enumerate(spec.rules):
         outcome = RULES[rule.kind](typed, rule, i, raw)
         for step, action, rows, detail in outcome.steps:
@@ -366,13 +443,14 @@ def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = 
         ledger.rows_quarantined += len(outcome.removed)
         typed = outcome.frame
     typed = _model_ready(typed, spec, raw, ledger, rejected)
+    _imputed(typed, spec, ledger)
     time_column = spec.split.time_column
     if (
         time_column
         and time_column not in spec.feature_columns
         and time_column
         not in (
-            spec.id_column,
+            spec.id_name,
             spec.target.column,
         )
     ):

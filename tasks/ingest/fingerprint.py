@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from entivec.tasks.ingest.read import BOOKKEEPING, SOURCE_FILE
+from entivec.tasks.ingest.read import BOOKKEEPING, RAW_LINE, SOURCE_FILE
 
 # --- fingerprint and quarantine files ---------------------------------------------------------------------------
 
@@ -49,6 +49,8 @@ def data_fingerprint(raw: pd.DataFrame, files: list[str]) -> dict:
     own, so compare fingerprints made with the same pandas major version (recorded here).
     """
     names = sorted((c for c in raw.columns if c not in BOOKKEEPING), key=str)
+    if RAW_LINE in raw.columns and raw[RAW_LINE].notna().any():
+        names.append(RAW_LINE)  # a ragged line's text is data as read: changing it changes the fingerprint
     columns = [str(c) for c in names]
     hashes = _row_hashes(raw, names)
     per_file = []

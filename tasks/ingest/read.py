@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import codecs
 import difflib
 import glob
 import math
@@ -17,43 +16,30 @@ import pyarrow.parquet as pq
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import (
+    ROW_ID,
     FillRule,
     RangeRule,
     Spec,
     SpecError,
     resolve_source,
 )
-from entivec.schemas.tables import (
-    category_columns,
-    required_columns,
+from entivec.schemas.tables import category_columns, required_columns
+from entivec.tasks.ingest.common import (  # noqa: F401 - re-exported: callers import these names from here
+    _COMPRESSION_SUFFIXES,
+    _CSV_SUFFIXES,
+    _PARQUET_SUFFIXES,
+    BOOKKEEPING,
+    EXAMPLES,
+    QUARANTINE_STEM,
+    RAGGED,
+    RAW_LINE,
+    REASONS,
+    SOURCE_FILE,
+    SOURCE_ROW,
+    InputError,
 )
-
-SOURCE_FILE = "_source_file"
-SOURCE_ROW = "_source_row"
-BOOKKEEPING = (SOURCE_FILE, SOURCE_ROW)
-REASONS = "_reasons"
-QUARANTINE_STEM = "quarantine"
-
-_CSV_SUFFIXES = {".csv", ".tsv", ".txt"}
-_COMPRESSION_SUFFIXES = {".gz", ".bz2", ".zip", ".xz", ".zst"}
-_PARQUET_SUFFIXES = {".parquet", ".pq", ".parq"}
-EXAMPLES = 5  # row references quoted in a ledger step or an error message
-
-
-class InputError(Exception):
-    """Input that stops the run: the message names the file and, where it applies, the column and rows.
-
-    ``quarantine`` and ``ledger`` are set when cleaning got as far as rejecting every row, so a caller can
-    still write the quarantine for people to open.
-    """
-
-    def __init__(self, message: str, *, quarantine: pd.DataFrame | None = None, ledger: Ledger | None = None):
-        super().__init__(message)
-        self.quarantine = quarantine
-        self.ledger = ledger
-
+from entivec.tasks.ingest.csvfile import _is_utf8, _open_bytes, csv_batches, csv_header
 
 # --- spec checks that need more than the spec model itself ------------------------------------------------------
 
@@ -74,7 +60,7 @@ def check_spec_fits(spec: Spec, spec_path: str | Path | None = None) -> None:
                 f"(numeric columns, the target, a numeric time column)"
             )
         if isinstance(rule, FillRule):
-            if rule.column == spec.id_column:
+            if rule.column == spec.id_name:
                 raise SpecError(f"{where}{key} fills the id column {rule.column!r}; ids are never made up")
             if rule.column in numeric:
                 value = number_or_none(rule.value)
@@ -174,63 +160,40 @@ def _file_format(path: Path, declared: str) -> str:
     )
 
 
-def _python_encoding(spec: Spec, path: Path) -> str:
-    declared = spec.source.encoding
-    try:
-        name = codecs.lookup(declared).name
-    except LookupError:
-        raise InputError(
-            f"{path}: source.encoding {declared!r} is not an encoding Python knows (e.g. utf-8, latin-1, cp1252)"
-        ) from None
-    # A byte-order mark is common in files saved by spreadsheet programs; utf-8-sig reads files with and without.
-    return "utf-8-sig" if name == "utf-8" else declared
-
-
-def _decode_error(path: Path, declared: str, exc: UnicodeDecodeError) -> InputError:
-    where = f"byte 0x{exc.object[exc.start : exc.start + 1].hex()}"
-    if path.suffix.lower() not in _COMPRESSION_SUFFIXES:
-        # The parser's position is inside one chunk; find the line in the whole file (error path only).
-        data = path.read_bytes()
-        try:
-            data.decode(declared)
-        except UnicodeDecodeError as whole:
-            line = data.count(b"\n", 0, whole.start) + 1
-            where = f"byte 0x{data[whole.start : whole.start + 1].hex()} on line {line}"
-    return InputError(
-        f"{path}: cannot be decoded as {declared} ({where}); the spec declares source.encoding: {declared}. "
-        f"Set source.encoding to the file's real encoding (for example latin-1 or cp1252)"
-    )
-
-
-def _csv_options(spec: Spec, path: Path) -> dict[str, Any]:
-    return {"encoding": _python_encoding(spec, path), "sep": spec.source.delimiter}
-
-
 def _read_header(path: Path, fmt: str, spec: Spec) -> list[str]:
     try:
-        if fmt == "parquet":
-            names = [str(c) for c in pq.read_schema(path).names]
-            first_line = names
-        else:
-            options = _csv_options(spec, path)
-            names = [str(c) for c in pd.read_csv(path, nrows=0, **options).columns]
-            # pandas renames a repeated header ("weight", "weight.1"); the first line read as data shows it.
-            first_line = pd.read_csv(path, nrows=1, header=None, dtype=str, **options).iloc[0].tolist()
+        names = [str(c) for c in pq.read_schema(path).names] if fmt == "parquet" else csv_header(path, spec)
     except Exception as exc:
         raise _read_error(path, fmt, spec, exc) from None
-    written = [c for c in first_line if isinstance(c, str)]
-    repeated = sorted({c for c in written if written.count(c) > 1})
+    repeated = sorted({c for c in names if names.count(c) > 1})
     if repeated:
         raise InputError(f"{path}: column name(s) {', '.join(map(repr, repeated))} appear more than once in the header")
     return names
+
+
+def _decode_error(path: Path, declared: str) -> InputError:
+    where = ""
+    try:
+        with _open_bytes(path) as handle:
+            data = handle.read()  # error path only: find the first byte that does not decode, and its line
+        data.decode("utf-8-sig" if _is_utf8(declared) else declared)
+    except UnicodeDecodeError as whole:
+        line = data.count(b"\n", 0, whole.start) + 1
+        where = f" (byte 0x{data[whole.start : whole.start + 1].hex()} on line {line})"
+    except (OSError, EOFError):
+        pass
+    return InputError(
+        f"{path}: cannot be decoded as {declared}{where}; the spec declares source.encoding: {declared}. "
+        f"Set source.encoding to the file's real encoding (for example latin-1 or cp1252)"
+    )
 
 
 def _read_body(path: Path, fmt: str, spec: Spec, header: list[str]) -> pd.DataFrame:
     try:
         if fmt == "parquet":
             return pd.read_parquet(path)
-        text = {c: str for c in category_columns(spec) if c in header}
-        return pd.read_csv(path, dtype=text, low_memory=False, **_csv_options(spec, path))
+        parts = list(csv_batches(path, spec, header))
+        return pd.concat(parts, ignore_index=True) if len(parts) > 1 else (parts[0] if parts else pd.DataFrame())
     except Exception as exc:
         raise _read_error(path, fmt, spec, exc) from None
 
@@ -239,15 +202,19 @@ def _read_error(path: Path, fmt: str, spec: Spec, exc: Exception) -> Exception:
     """Turn a reader's exception into an InputError, except I/O trouble that a retry may cure."""
     if isinstance(exc, InputError):
         return exc
-    if isinstance(exc, UnicodeDecodeError):
-        return _decode_error(path, spec.source.encoding, exc)
+    if isinstance(exc, UnicodeDecodeError) or (
+        isinstance(exc, pyarrow_lib.ArrowInvalid) and "invalid UTF8" in str(exc)
+    ):
+        return _decode_error(path, spec.source.encoding)
     if isinstance(exc, (FileNotFoundError, PermissionError, IsADirectoryError)):
         return InputError(f"{path}: cannot be opened ({exc.strerror or exc})")
     if isinstance(exc, OSError) and exc.errno is not None:
         return exc  # a real I/O fault (network share, disk): left as OSError so the task's retries apply
-    if isinstance(exc, pd.errors.EmptyDataError):
+    if isinstance(exc, pd.errors.EmptyDataError) or (
+        isinstance(exc, pyarrow_lib.ArrowInvalid) and "Empty CSV file" in str(exc)
+    ):
         return InputError(f"{path}: the file is empty (no header, no rows)")
-    if isinstance(exc, pd.errors.ParserError):
+    if isinstance(exc, (pd.errors.ParserError, pyarrow_lib.ArrowInvalid)) and fmt == "csv":
         return InputError(
             f"{path}: not readable as CSV with delimiter {spec.source.delimiter!r} (spec key source.delimiter): {exc}"
         )
@@ -259,7 +226,8 @@ def _read_error(path: Path, fmt: str, spec: Spec, exc: Exception) -> Exception:
 
 
 def _check_columns(path: Path, columns: list[str], spec: Spec, fmt: str) -> None:
-    clash = [c for c in (*BOOKKEEPING, REASONS) if c in columns]
+    reserved = (*BOOKKEEPING, REASONS, *([ROW_ID] if spec.id_column is None else []))
+    clash = [c for c in reserved if c in columns]
     if clash:
         raise InputError(f"{path}: column {clash[0]!r} is a name entivec reserves for bookkeeping; rename it")
     required = required_columns(spec)
@@ -316,9 +284,12 @@ def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[s
         body = _read_body(path, fmt, spec, header)
         if len(body) == 0:
             raise InputError(f"{path}: has a header but no data rows")
-        body = body[first]
-        body[SOURCE_FILE] = str(path)
-        body[SOURCE_ROW] = np.arange(1, len(body) + 1, dtype=np.int64)
+        if fmt == "parquet":
+            body = body[first]
+            body[SOURCE_FILE] = str(path)
+            body[SOURCE_ROW] = np.arange(1, len(body) + 1, dtype=np.int64)
+        else:
+            body = body[[*first, *(c for c in BOOKKEEPING if c in body.columns)]]
         frames.append(body)
     raw = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
     return raw.reset_index(drop=True), [str(p) for p in paths]

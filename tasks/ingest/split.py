@@ -24,7 +24,19 @@ from entivec.tasks.ingest.read import InputError, number_or_none, timestamp_or_n
 # --- split ------------------------------------------------------------------------------------------------------
 
 
+def rolling_cutoff(times: pd.Series, split: SplitSpec) -> pd.Timestamp:
+    """The moment ``last_weeks`` weeks before the newest time in ``times`` (UTC timestamps)."""
+    if pd.api.types.is_numeric_dtype(times.dtype):
+        raise SpecError(
+            f"spec: key 'split.last_weeks' needs dates or times, but time column {split.time_column!r} holds numbers; "
+            f"use split.cutoff with a number instead"
+        )
+    return times.max() - pd.Timedelta(weeks=int(split.last_weeks))
+
+
 def _cutoff_for(times: pd.Series, split: SplitSpec) -> Any:
+    if split.last_weeks is not None:
+        return rolling_cutoff(times, split)
     cutoff = split.cutoff
     if pd.api.types.is_numeric_dtype(times.dtype):
         number = number_or_none(cutoff)
@@ -47,7 +59,9 @@ def split_rows(frame: pd.DataFrame, split: SplitSpec) -> tuple[pd.DataFrame, pd.
       test rows (the rounding scikit-learn's train_test_split uses), at least 1 and at most n - 1.
       The same rows in the same order with the same seed always give the same split.
     - ``time``: rows whose time is at or after ``cutoff`` are test. Text times are read as UTC (see
-      ``parse_times``); a numeric time column (e.g. a year) is compared as numbers.
+      ``parse_times``); a numeric time column (e.g. a year) is compared as numbers. With ``last_weeks`` the
+      cutoff is that many weeks before the newest time of the rows, so the held-out window rolls forward
+      with each new drop.
     """
     n = len(frame)
     if split.method == "random":
@@ -73,8 +87,10 @@ def split_rows(frame: pd.DataFrame, split: SplitSpec) -> tuple[pd.DataFrame, pd.
         is_test = (times >= cutoff).to_numpy(dtype=bool)
         if is_test.all() or not is_test.any():
             side = "train" if is_test.all() else "test"
+            at = (f"cutoff {split.cutoff!r} (spec key split.cutoff)" if split.last_weeks is None
+                  else f"the last {split.last_weeks} week(s), from {cutoff} (spec key split.last_weeks)")
             raise InputError(
-                f"time split on column {column!r} at cutoff {split.cutoff!r} (spec key split.cutoff) leaves the "
+                f"time split on column {column!r} at {at} leaves the "
                 f"{side} part empty: times run from {times.min()} to {times.max()}"
             )
     train = frame[~is_test].reset_index(drop=True)

@@ -43,8 +43,11 @@ class FeatureEncoder:
     """Fitted on training rows only; turns a cleaned frame into :class:`EncodedInputs`.
 
     - embedded columns: vocabulary ids (unknown, rare or missing -> id 0);
-    - numeric columns: standardized with the training mean and standard deviation (population, ddof=0);
-      a constant column gets a standard deviation of 1; a missing value becomes 0, i.e. the training mean;
+    - numeric columns: a missing value of a column declared ``impute: median`` is first filled with the training
+      rows' median (on the scale as read) and flagged in an indicator input ``<column>=missing``; then the
+      column's ``transform`` (log or log1p) is applied; then it is standardized with the training mean and
+      standard deviation (population, ddof=0); a constant column gets a standard deviation of 1; a value still
+      missing becomes 0, i.e. the training mean;
     - one-hot columns: one indicator per level observed on the training rows, in sorted order; a level not
       seen in training, or a missing value, gives all zeros.
     """
@@ -55,6 +58,27 @@ class FeatureEncoder:
     numeric_mean: list[float]
     numeric_std: list[float]
     onehot_levels: dict[str, list[str]] = field(default_factory=dict)
+    numeric_transform: list[str] = field(default_factory=list)  # per numeric column: none, log or log1p
+    numeric_fill: list[float | None] = field(default_factory=list)  # per numeric column: the median, or None
+
+    def __post_init__(self) -> None:
+        # Encoders stored before transforms and imputation existed have neither: no transform, no fill.
+        n = len(self.numeric_columns)
+        self.numeric_transform = list(self.numeric_transform) or ["none"] * n
+        self.numeric_fill = list(self.numeric_fill) or [None] * n
+
+    def _numeric(self, frame: pd.DataFrame, j: int) -> tuple[np.ndarray, np.ndarray]:
+        """Column j as read, filled and transformed (not yet standardized), and where it was missing."""
+        values = pd.to_numeric(frame[self.numeric_columns[j]], errors="coerce").to_numpy(dtype=np.float64)
+        missing = np.isnan(values)
+        if self.numeric_fill[j] is not None:
+            values = np.where(missing, self.numeric_fill[j], values)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if self.numeric_transform[j] == "log":
+                values = np.log(values)
+            elif self.numeric_transform[j] == "log1p":
+                values = np.log1p(values)
+        return values, missing
 
     @classmethod
     def fit(cls, frame: pd.DataFrame, spec: Spec, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
@@ -64,9 +88,18 @@ class FeatureEncoder:
         absent = [c for c in spec.embed_names if c not in vocabularies]
         if absent:
             raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
-        means, stds = [], []
-        for name in spec.numeric_names:
-            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
+        means, stds, fills = [], [], []
+        transforms = [c.transform for c in spec.columns.numeric]
+        for col in spec.columns.numeric:
+            fill = None
+            if col.impute == "median":
+                seen = pd.to_numeric(frame[col.name], errors="coerce").to_numpy(dtype=np.float64)
+                seen = seen[np.isfinite(seen)]
+                fill = float(np.median(seen)) if seen.size else 0.0
+            fills.append(fill)
+        probe = cls(list(spec.embed_names), {}, list(spec.numeric_names), [], [], {}, transforms, fills)
+        for j in range(len(spec.numeric_names)):
+            values, _ = probe._numeric(frame, j)
             finite = values[np.isfinite(values)]
             mean = float(finite.mean()) if finite.size else 0.0
             std = float(finite.std()) if finite.size else 0.0
@@ -83,12 +116,19 @@ class FeatureEncoder:
             numeric_mean=means,
             numeric_std=stds,
             onehot_levels=levels,
+            numeric_transform=transforms,
+            numeric_fill=fills,
         )
+
+    @property
+    def indicator_columns(self) -> list[str]:
+        """Numeric columns with a missing-value indicator input (those imputed)."""
+        return [c for c, fill in zip(self.numeric_columns, self.numeric_fill, strict=True) if fill is not None]
 
     @property
     def dense_names(self) -> list[str]:
         """Names of the dense input columns, in order: numerics, then ``column=level`` indicators."""
-        names = list(self.numeric_columns)
+        names = list(self.numeric_columns) + [f"{c}=missing" for c in self.indicator_columns]
         for column, levels in self.onehot_levels.items():
             names.extend(f"{column}={level}" for level in levels)
         return names
@@ -99,11 +139,14 @@ class FeatureEncoder:
         for j, name in enumerate(self.embed_columns):
             cat_ids[:, j] = self.vocabularies[name].encode(frame[name])
         dense = np.zeros((n, len(self.dense_names)), dtype=np.float32)
-        for j, name in enumerate(self.numeric_columns):
-            values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
+        start = len(self.numeric_columns)
+        for j in range(len(self.numeric_columns)):
+            values, missing = self._numeric(frame, j)
             scaled = (values - self.numeric_mean[j]) / self.numeric_std[j]
             dense[:, j] = np.where(np.isfinite(scaled), scaled, 0.0)
-        start = len(self.numeric_columns)
+            if self.numeric_fill[j] is not None:
+                dense[:, start] = missing
+                start += 1
         for name, levels in self.onehot_levels.items():
             positions = pd.Index(levels, dtype="string").get_indexer(category_strings(frame[name]))
             rows = np.flatnonzero(positions >= 0)
@@ -119,6 +162,8 @@ class FeatureEncoder:
             "numeric_mean": [float(v) for v in self.numeric_mean],
             "numeric_std": [float(v) for v in self.numeric_std],
             "onehot_levels": {k: list(v) for k, v in self.onehot_levels.items()},
+            "numeric_transform": list(self.numeric_transform),
+            "numeric_fill": [None if v is None else float(v) for v in self.numeric_fill],
         }
 
     @classmethod
@@ -134,4 +179,6 @@ class FeatureEncoder:
             numeric_mean=[float(v) for v in data["numeric_mean"]],
             numeric_std=[float(v) for v in data["numeric_std"]],
             onehot_levels={k: list(v) for k, v in data["onehot_levels"].items()},
+            numeric_transform=list(data.get("numeric_transform", [])),
+            numeric_fill=[None if v is None else float(v) for v in data.get("numeric_fill", [])],
         )
