@@ -183,11 +183,13 @@ Rule = Annotated[RangeRule | FillRule | DropMissingRule, Field(discriminator="ki
 
 
 class SplitSpec(_Strict):
-    """``random``: a seeded share of the rows is held out. ``time``: rows at or after a moment are held out, the
+    """``random``: a seeded share of the rows is held out. ``hash``: a row is held out when a seeded hash of its id
+    falls in the test share, so a row keeps its side in every re-run and every later drop, and a table read as a
+    stream splits batch by batch. ``time``: rows at or after a moment are held out, the
     moment being a fixed ``cutoff`` or, with ``last_weeks``, that many weeks before the newest time in the data
     (a window that rolls forward with every new drop)."""
 
-    method: Literal["random", "time"] = "random"
+    method: Literal["random", "hash", "time"] = "random"
     test_fraction: Annotated[float, Field(gt=0, lt=1)] = 0.2
     seed: int = 0
     time_column: str | None = None

@@ -159,7 +159,7 @@ def _parses_as_time() -> pa.Check:
     return pa.Check(lambda s: parse_times(s).notna(), name=CHECK_TIME)
 
 
-def build_schema(spec: Spec) -> pa.DataFrameSchema:
+def build_schema(spec: Spec, unique_ids: bool = True) -> pa.DataFrameSchema:
     """The pandera schema of the spec's table.
 
     - id column: text, never missing, unique (every row sharing an id fails, see ``report_duplicates="all"``).
@@ -173,6 +173,8 @@ def build_schema(spec: Spec) -> pa.DataFrameSchema:
 
     A column that a cleaning rule deals with (see ``null_handled_by_rules``) may be missing at this stage:
     the rule, and after it the model-readiness check, decide. Columns the spec does not name are allowed.
+    ``unique_ids=False`` leaves id uniqueness out, for a table checked batch by batch whose duplicate ids are
+    found across all batches by other means.
     """
     deferred = null_handled_by_rules(spec)
     time_column = spec.split.time_column
@@ -186,7 +188,7 @@ def build_schema(spec: Spec) -> pa.DataFrameSchema:
             checks=extra.get(spec.id_name, []),
             coerce=True,
             nullable=False,
-            unique=True,
+            unique=unique_ids,
             report_duplicates="all",
         )
     }

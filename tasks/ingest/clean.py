@@ -154,20 +154,28 @@ _DETAIL = {
 
 
 def _validate(
-    raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections, skip: np.ndarray | None = None
+    raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections, skip: np.ndarray | None = None,
+    duplicates: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Validate lazily with the spec's pandera schema; return the typed rows that pass (index = raw position).
 
-    Rows at the positions ``skip`` (already quarantined) are left out."""
-    schema = build_schema(spec)
+    Rows at the positions ``skip`` (already quarantined) are left out. With ``duplicates`` (positions of rows
+    whose id another row of the whole table shares, found outside this frame) the schema's own uniqueness
+    check is replaced by that list."""
+    schema = build_schema(spec, unique_ids=duplicates is None)
     names = list(schema.columns)
     work = raw[[*names, SOURCE_FILE, SOURCE_ROW]]
     work = (work.drop(index=raw.index[skip]) if skip is not None and len(skip) else work).copy()
+    found: list[pd.DataFrame] = []
+    if duplicates is not None and len(duplicates):
+        found.append(pd.DataFrame({"row": np.asarray(duplicates, dtype=np.int64), "reason": "duplicate_id"}))
     try:
-        return schema.validate(work, lazy=True)
+        typed = schema.validate(work, lazy=True)
+        if not found:
+            return typed
+        cases = pd.DataFrame({"index": pd.Series([], dtype=float), "column": [], "check": [], "failure_case": []})
     except pa.errors.SchemaErrors as exc:
         cases = exc.failure_cases
-    found: list[pd.DataFrame] = []
     coerce = cases[cases["check"].astype(str).str.startswith("coerce_dtype") & cases["index"].notna()]
     if len(coerce):
         # A column with values that are not numbers was checked uncoerced, so its other results mean nothing.
@@ -417,23 +425,30 @@ def _imputed(frame: pd.DataFrame, spec: Spec, ledger: Ledger) -> None:
         )
 
 
-def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = None) -> CleanResult:
+def validate_and_clean(
+    raw: pd.DataFrame, spec: Spec, files: list[str] | None = None, *, duplicates: np.ndarray | None = None,
+    first_row_id: int = 1, allow_empty: bool = False,
+) -> CleanResult:
     """Validate, apply the spec's rules in order, and check model-readiness; every row is used or quarantined.
 
     Raises InputError when a required column is missing or when no row survives (the exception then carries
     the quarantine and the ledger), SpecError when a rule cannot apply to its column, and LedgerMismatch if
     the counts do not add up.
+
+    For one batch of a streamed table: ``duplicates`` are the positions (in this batch) of rows whose id is
+    shared anywhere in the table, ``first_row_id`` numbers the rows when the spec has no id column, and
+    ``allow_empty`` lets a batch lose every row (the stream checks the whole table at its end).
     """
     check_spec_fits(spec)
     raw = with_bookkeeping(raw)
     files = list(files) if files is not None else [str(f) for f in pd.unique(raw[SOURCE_FILE])]
     ledger = Ledger(rows_in=len(raw), files=files)
-    raw = with_row_ids(raw, spec, ledger)
+    raw = with_row_ids(raw, spec, ledger, first=first_row_id)
     _require_columns(raw, spec, files)
     rejected = _Rejections()
     ragged = _ragged(raw, ledger, rejected)
     _whitespace_merges(raw, spec, ledger, ragged)
-    typed = _validate(raw, spec, ledger, rejected, skip=ragged)
+    typed = _validate(raw, spec, ledger, rejected, skip=ragged, duplicates=duplicates)
     for i, rule in enumerate(spec.rules):
         outcome = RULES[rule.kind](typed, rule, i, raw)
         for step, action, rows, detail in outcome.steps:
@@ -458,7 +473,7 @@ def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = 
     frame = typed.reset_index(drop=True)
     quarantine = rejected.table(raw)
     ledger.check(len(frame), len(quarantine))
-    if len(frame) == 0:
+    if len(frame) == 0 and not allow_empty:
         top = sorted(ledger.quarantined_by_reason().items(), key=lambda kv: -kv[1])[:5]
         summary = ", ".join(f"{reason} ({rows})" for reason, rows in top)
         raise InputError(

@@ -6,6 +6,8 @@ from __future__ import annotations
 import difflib
 import glob
 import math
+from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -188,16 +190,6 @@ def _decode_error(path: Path, declared: str) -> InputError:
     )
 
 
-def _read_body(path: Path, fmt: str, spec: Spec, header: list[str]) -> pd.DataFrame:
-    try:
-        if fmt == "parquet":
-            return pd.read_parquet(path)
-        parts = list(csv_batches(path, spec, header))
-        return pd.concat(parts, ignore_index=True) if len(parts) > 1 else (parts[0] if parts else pd.DataFrame())
-    except Exception as exc:
-        raise _read_error(path, fmt, spec, exc) from None
-
-
 def _read_error(path: Path, fmt: str, spec: Spec, exc: Exception) -> Exception:
     """Turn a reader's exception into an InputError, except I/O trouble that a retry may cure."""
     if isinstance(exc, InputError):
@@ -253,18 +245,48 @@ def close_hint(name: str, columns: list[str]) -> str:
     return f" (did you mean {close[0]!r}?)" if close else ""
 
 
-def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
-    """Read the spec's source (one file or a glob) into one frame with ``_source_file`` and ``_source_row``.
+def _partition_values(path: Path, root: Path | None) -> dict[str, str]:
+    """Hive-style partition keys in the folders between ``root`` and the file (``day=2026-01-05/part-0.parquet``)."""
+    if root is None:
+        return {}
+    keys = {}
+    for part in path.relative_to(root).parts[:-1]:
+        key, sep, value = part.partition("=")
+        if sep and key:
+            keys[key] = value
+    return keys
 
-    Category and id columns are read as text. Files of a glob are read in sorted path order and must have the
-    same columns (in any order; the first file's order is kept). Every file-level fault raises InputError.
-    """
+
+@dataclass
+class SourceFiles:
+    """The files of a spec's source, checked: same columns everywhere, every required column present."""
+
+    pattern: str
+    paths: list[Path]
+    formats: list[str]
+    columns: list[str]  # the first file's column order (partition keys last)
+    root: Path | None = None  # the partitioned folder, when the source is one
+
+    @property
+    def names(self) -> list[str]:
+        return [str(p) for p in self.paths]
+
+
+def source_files(spec: Spec, spec_path: str | Path) -> SourceFiles:
+    """Find and check the spec's files (one file, a glob, or a folder of Parquet files partitioned as
+    ``key=value`` folders); headers only, so a missing column or a mismatched file fails before any large read."""
     check_spec_fits(spec, spec_path)
     pattern = resolve_source(spec, spec_path)
-    paths = _match_files(pattern)
+    root = Path(pattern) if Path(pattern).is_dir() else None
+    if root is not None:
+        paths = sorted(p for p in root.rglob("*") if p.is_file() and p.suffix.lower() in _PARQUET_SUFFIXES)
+        if not paths:
+            raise InputError(f"source {root}: is a folder without Parquet files (spec key source.path); use a glob "
+                             f"such as {root / '*.csv'} for CSV files")
+    else:
+        paths = _match_files(pattern)
     formats = [_file_format(p, spec.source.format) for p in paths]
-    # Headers first: a missing column or a mismatched file fails before any large read.
-    headers = [_read_header(p, f, spec) for p, f in zip(paths, formats, strict=True)]
+    headers = [_read_header(p, f, spec) + list(_partition_values(p, root)) for p, f in zip(paths, formats, strict=True)]
     for path, fmt, header in zip(paths, formats, headers, strict=True):
         _check_columns(path, header, spec, fmt)
     first = headers[0]
@@ -279,21 +301,50 @@ def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[s
                 + (f"has extra {extra} " if extra else "")
                 + f"compared with {paths[0]}"
             )
-    frames = []
-    for path, fmt, header in zip(paths, formats, headers, strict=True):
-        body = _read_body(path, fmt, spec, header)
-        if len(body) == 0:
-            raise InputError(f"{path}: has a header but no data rows")
-        if fmt == "parquet":
-            body = body[first]
-            body[SOURCE_FILE] = str(path)
-            body[SOURCE_ROW] = np.arange(1, len(body) + 1, dtype=np.int64)
-        else:
-            body = body[[*first, *(c for c in BOOKKEEPING if c in body.columns)]]
-        frames.append(body)
-    raw = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
-    return raw.reset_index(drop=True), [str(p) for p in paths]
+    return SourceFiles(pattern, paths, formats, first, root)
 
+
+def file_batches(source: SourceFiles, i: int, spec: Spec, batch_rows: int = 1 << 20) -> Iterator[pd.DataFrame]:
+    """The rows of the source's i-th file as frames of at most about ``batch_rows`` rows, with ``_source_file``
+    and ``_source_row`` (and ``_raw_line`` where a CSV line was ragged); columns in the first file's order."""
+    path, fmt = source.paths[i], source.formats[i]
+    partition = _partition_values(path, source.root)
+    rows = 0
+    try:
+        if fmt == "parquet":
+            for batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows):
+                frame = batch.to_pandas()
+                for key, value in partition.items():
+                    frame[key] = value
+                frame = frame[source.columns]
+                frame[SOURCE_FILE] = str(path)
+                frame[SOURCE_ROW] = np.arange(rows + 1, rows + len(frame) + 1, dtype=np.int64)
+                rows += len(frame)
+                yield frame
+        else:
+            # About 100 bytes a CSV row: blocks of that many bytes give batches of roughly batch_rows rows.
+            for frame in csv_batches(path, spec, source.columns, batch_bytes=max(1 << 16, batch_rows * 100)):
+                rows += len(frame)
+                yield frame[[*source.columns, *(c for c in BOOKKEEPING if c in frame.columns)]]
+    except InputError:
+        raise
+    except Exception as exc:
+        raise _read_error(path, fmt, spec, exc) from None
+    if rows == 0:
+        raise InputError(f"{path}: has a header but no data rows")
+
+
+def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
+    """Read the spec's source (one file, a glob or a partitioned folder) into one frame with ``_source_file``
+    and ``_source_row``: the batches of :func:`file_batches`, concatenated.
+
+    Category and id columns are read as text. Files of a glob are read in sorted path order and must have the
+    same columns (in any order; the first file's order is kept). Every file-level fault raises InputError.
+    """
+    source = source_files(spec, spec_path)
+    frames = [frame for i in range(len(source.paths)) for frame in file_batches(source, i, spec)]
+    raw = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
+    return raw.reset_index(drop=True), source.names
 
 
 # --- Prefect tasks ----------------------------------------------------------------------------------------------
