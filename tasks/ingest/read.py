@@ -323,7 +323,7 @@ def file_batches(source: SourceFiles, i: int, spec: Spec, batch_rows: int = 1 <<
                 yield frame
         else:
             # About 100 bytes a CSV row: blocks of that many bytes give batches of roughly batch_rows rows.
-            for frame in csv_batches(path, spec, source.columns, batch_bytes=max(1 << 16, batch_rows * 100)):
+            for frame in csv_batches(path, spec, source.columns, batch_bytes=max(1 << 12, batch_rows * 100)):
                 rows += len(frame)
                 yield frame[[*source.columns, *(c for c in BOOKKEEPING if c in frame.columns)]]
     except InputError:
