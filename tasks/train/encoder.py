@@ -15,6 +15,35 @@ from entivec.schemas.vocabulary import Vocabulary, category_strings
 # --- encoding a cleaned frame into network inputs ----------------------------------------------------------------
 
 
+def numeric_fill(values: np.ndarray, impute: str) -> float | None:
+    """The value a column's missing entries get (the median of the finite training values), or None."""
+    if impute != "median":
+        return None
+    seen = values[np.isfinite(values)]
+    return float(np.median(seen)) if seen.size else 0.0
+
+
+def transformed(values: np.ndarray, transform: str, fill: float | None) -> tuple[np.ndarray, np.ndarray]:
+    """Values filled (when ``fill`` is given) and transformed, and where they were missing."""
+    missing = np.isnan(values)
+    if fill is not None:
+        values = np.where(missing, fill, values)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if transform == "log":
+            values = np.log(values)
+        elif transform == "log1p":
+            values = np.log1p(values)
+    return values, missing
+
+
+def standardizer(values: np.ndarray) -> tuple[float, float]:
+    """Mean and population standard deviation of the finite values; 1 for a constant or empty column."""
+    finite = values[np.isfinite(values)]
+    mean = float(finite.mean()) if finite.size else 0.0
+    std = float(finite.std()) if finite.size else 0.0
+    return mean, (std if std > 0 and math.isfinite(std) else 1.0)
+
+
 @dataclass
 class EncodedInputs:
     """Network inputs for n rows."""
@@ -36,6 +65,13 @@ class EncodedInputs:
     def take(self, rows: np.ndarray) -> EncodedInputs:
         """The inputs of the given rows (positions or a boolean mask)."""
         return EncodedInputs(self.cat_ids[rows], self.dense[rows])
+
+
+def numeric_stats(values: np.ndarray, col) -> tuple[float, float, float | None]:
+    """(mean, std, fill) of one numeric column's training values as read, for its spec entry ``col``."""
+    fill = numeric_fill(values, col.impute)
+    mean, std = standardizer(transformed(values, col.transform, fill)[0])
+    return mean, std, fill
 
 
 @dataclass
@@ -70,15 +106,7 @@ class FeatureEncoder:
     def _numeric(self, frame: pd.DataFrame, j: int) -> tuple[np.ndarray, np.ndarray]:
         """Column j as read, filled and transformed (not yet standardized), and where it was missing."""
         values = pd.to_numeric(frame[self.numeric_columns[j]], errors="coerce").to_numpy(dtype=np.float64)
-        missing = np.isnan(values)
-        if self.numeric_fill[j] is not None:
-            values = np.where(missing, self.numeric_fill[j], values)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            if self.numeric_transform[j] == "log":
-                values = np.log(values)
-            elif self.numeric_transform[j] == "log1p":
-                values = np.log1p(values)
-        return values, missing
+        return transformed(values, self.numeric_transform[j], self.numeric_fill[j])
 
     @classmethod
     def fit(cls, frame: pd.DataFrame, spec: Spec, vocabularies: dict[str, Vocabulary]) -> FeatureEncoder:
@@ -88,27 +116,24 @@ class FeatureEncoder:
         absent = [c for c in spec.embed_names if c not in vocabularies]
         if absent:
             raise KeyError(f"feature encoder: no vocabulary for embedded column(s) {absent}")
-        means, stds, fills = [], [], []
-        transforms = [c.transform for c in spec.columns.numeric]
-        for col in spec.columns.numeric:
-            fill = None
-            if col.impute == "median":
-                seen = pd.to_numeric(frame[col.name], errors="coerce").to_numpy(dtype=np.float64)
-                seen = seen[np.isfinite(seen)]
-                fill = float(np.median(seen)) if seen.size else 0.0
-            fills.append(fill)
-        probe = cls(list(spec.embed_names), {}, list(spec.numeric_names), [], [], {}, transforms, fills)
-        for j in range(len(spec.numeric_names)):
-            values, _ = probe._numeric(frame, j)
-            finite = values[np.isfinite(values)]
-            mean = float(finite.mean()) if finite.size else 0.0
-            std = float(finite.std()) if finite.size else 0.0
-            means.append(mean)
-            stds.append(std if std > 0 and math.isfinite(std) else 1.0)
+        stats = [numeric_stats(pd.to_numeric(frame[col.name], errors="coerce").to_numpy(dtype=np.float64), col)
+                 for col in spec.columns.numeric]
         levels = {}
         for name in spec.onehot_names:
             observed = category_strings(frame[name]).dropna().unique()
             levels[name] = sorted(str(v) for v in observed)
+        return cls.from_stats(spec, vocabularies, stats, levels)
+
+    @classmethod
+    def from_stats(
+        cls, spec: Spec, vocabularies: dict[str, Vocabulary], stats: list[tuple[float, float, float | None]],
+        levels: dict[str, list[str]],
+    ) -> FeatureEncoder:
+        """An encoder from per-numeric-column (mean, std, fill) and one-hot levels computed elsewhere (a stream)."""
+        means = [s[0] for s in stats]
+        stds = [s[1] for s in stats]
+        fills = [s[2] for s in stats]
+        transforms = [c.transform for c in spec.columns.numeric]
         return cls(
             embed_columns=list(spec.embed_names),
             vocabularies={c: vocabularies[c] for c in spec.embed_names},
