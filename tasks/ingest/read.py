@@ -10,6 +10,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
+from urllib.parse import unquote
 
 import numpy as np
 import pandas as pd
@@ -253,7 +254,7 @@ def _partition_values(path: Path, root: Path | None) -> dict[str, str]:
     for part in path.relative_to(root).parts[:-1]:
         key, sep, value = part.partition("=")
         if sep and key:
-            keys[key] = value
+            keys[unquote(key)] = unquote(value)  # writers percent-encode (pyarrow's default segment encoding)
     return keys
 
 
