@@ -33,7 +33,6 @@ from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import (
-    ROW_ID,
     Condition,
     DropMissingRule,
     FillRule,
@@ -50,6 +49,7 @@ from entivec.schemas.tables import (
 )
 from entivec.schemas.vocabulary import category_strings
 from entivec.settings import project_home
+from entivec.tasks.ingest.notes import imputed, whitespace_merges, with_row_ids
 from entivec.tasks.ingest.read import (
     BOOKKEEPING,
     EXAMPLES,
@@ -362,19 +362,6 @@ def _model_ready(
     return frame[~failing]
 
 
-def with_row_ids(raw: pd.DataFrame, spec: Spec, ledger: Ledger | None = None, first: int = 1) -> pd.DataFrame:
-    """Without an ``id_column`` in the spec, number the rows in read order (``first``, ``first`` + 1, ...) as ids."""
-    if spec.id_column is not None or ROW_ID in raw.columns:
-        return raw
-    if ledger is not None:
-        ledger.record(
-            "row_number_as_id", "report", len(raw),
-            "the spec names no id_column: rows are numbered in read order (files in sorted path order) and the "
-            "number is the id; such ids name rows of this read only, not the same record in a later drop",
-        )
-    return raw.assign(**{ROW_ID: pd.Series(np.arange(first, first + len(raw)), index=raw.index).astype(str)})
-
-
 def _ragged(raw: pd.DataFrame, ledger: Ledger, rejected: _Rejections) -> np.ndarray:
     """Positions of CSV lines with the wrong number of fields (see csvfile.csv_batches), quarantined here."""
     if RAW_LINE not in raw.columns:
@@ -389,40 +376,6 @@ def _ragged(raw: pd.DataFrame, ledger: Ledger, rejected: _Rejections) -> np.ndar
         rejected.add(positions, RAGGED)
         ledger.rows_quarantined += len(positions)
     return positions
-
-
-def _whitespace_merges(raw: pd.DataFrame, spec: Spec, ledger: Ledger, skip: np.ndarray) -> None:
-    """A ledger line per category column where spellings differing only by outer spaces became one category."""
-    keep = np.ones(len(raw), dtype=bool)
-    keep[skip] = False
-    for column in [*spec.embed_names, *spec.onehot_names]:
-        values = raw[column]
-        if pd.api.types.is_numeric_dtype(values.dtype) or pd.api.types.is_bool_dtype(values.dtype):
-            continue
-        text = values[keep].astype("string")
-        trimmed = text.str.strip()
-        padded = (text != trimmed).fillna(False).to_numpy(dtype=bool) & (trimmed != "").fillna(False).to_numpy()
-        if not padded.any():
-            continue
-        variants = pd.DataFrame({"as_read": text[padded], "category": trimmed[padded]}).drop_duplicates()
-        shown = "; ".join(f"{a!r} -> {c!r}" for a, c in variants.head(EXAMPLES).itertuples(index=False))
-        ledger.record(
-            f"whitespace:{column}", "report", int(padded.sum()),
-            f"values with leading or trailing spaces read as their trimmed spelling: {len(variants)} spelling(s) "
-            f"merged into {variants['category'].nunique()} categor(ies), e.g. {shown}",
-        )
-
-
-def _imputed(frame: pd.DataFrame, spec: Spec, ledger: Ledger) -> None:
-    for col in spec.columns.numeric:
-        if col.impute == "none":
-            continue
-        missing = int(frame[col.name].isna().sum())
-        ledger.record(
-            f"impute:{col.name}", "report", missing,
-            f"missing {col.name} kept; the network input is filled with the training rows' {col.impute} (stored in "
-            f"the vector set's encoder) and an indicator input '{col.name}=missing' is added",
-        )
 
 
 def validate_and_clean(
@@ -447,7 +400,7 @@ def validate_and_clean(
     _require_columns(raw, spec, files)
     rejected = _Rejections()
     ragged = _ragged(raw, ledger, rejected)
-    _whitespace_merges(raw, spec, ledger, ragged)
+    whitespace_merges(raw, spec, ledger, ragged)
     typed = _validate(raw, spec, ledger, rejected, skip=ragged, duplicates=duplicates)
     for i, rule in enumerate(spec.rules):
         outcome = RULES[rule.kind](typed, rule, i, raw)
@@ -458,7 +411,7 @@ def validate_and_clean(
         ledger.rows_quarantined += len(outcome.removed)
         typed = outcome.frame
     typed = _model_ready(typed, spec, raw, ledger, rejected)
-    _imputed(typed, spec, ledger)
+    imputed(typed, spec, ledger)
     time_column = spec.split.time_column
     if (
         time_column
