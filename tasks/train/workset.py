@@ -75,8 +75,8 @@ class WorkingSet:
         for start in rng.permutation(starts):
             stop = min(start + block_rows, n)
             order = rng.permutation(stop - start)
-            block = (np.asarray(ids[start:stop])[order], np.asarray(dense[start:stop])[order],
-                     np.asarray(y[start:stop])[order])
+            order += start  # one gather straight from the mapping: no intermediate copy of the block
+            block = (np.take(ids, order, axis=0), np.take(dense, order, axis=0), np.take(y, order))
             for array in (ids, dense, y):
                 _release(array)
             yield block
