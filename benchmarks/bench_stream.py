@@ -197,7 +197,7 @@ def main() -> None:
             home = Path(tempfile.mkdtemp(prefix=f"home-{mode}-", dir=folder))
             results[mode] = run_child(mode, data, home)
         print(f"\n{rows:,} rows        " + "".join(f"{m:>26}" for m in modes))
-        stages = [s for m in modes for s in results[m][0]["stages"]]
+        stages = list(dict.fromkeys(s for m in modes for s in results[m][0]["stages"]))
         for stage in stages:
             cells = "".join(f"{results[m][0]['stages'].get(stage, float('nan')):>24.1f} s" for m in modes)
             print(f"  {stage:<28}{cells}")

@@ -196,3 +196,36 @@ def test_a_stream_of_one_file_keeps_pyarrow_row_count(tmp_path):
         # Reference: pyarrow's own Parquet metadata of what was written.
         rows = sum(pq.ParquetFile(p).metadata.num_rows for p in (streamed.cleaned, streamed.quarantine))
     assert rows == 3000 == streamed.ledger.rows_in
+
+
+def test_training_from_the_working_set_learns_as_the_in_memory_trainer_does(tmp_path):
+    import torch
+    from sklearn.dummy import DummyRegressor
+    from sklearn.metrics import mean_squared_error
+
+    from entivec.schemas.spec import TrainingSpec
+    from entivec.tasks.train.network import predict
+    from entivec.tasks.train.streamfit import fit_from_working_set
+    from entivec.tasks.train.trainer import fit_network
+
+    torch.set_num_threads(1)
+    spec, path = setup(tmp_path, diamonds().head(20000))
+    training = TrainingSpec(epochs=6, patience=6, batch_size=256, threads=1, progress=False)
+    with working_set("test", tmp_path / "ws") as folder:
+        ws, vocabularies, _ = build_working_set(stream_clean(spec, path, folder, batch_rows=4000), spec)
+        cards = [vocabularies[c].size for c in spec.embed_names]
+        sizes = [c.resolved_size(vocabularies[c.name].size) for c in spec.columns.embed]
+        common = dict(columns=spec.embed_names, cardinalities=cards, sizes=sizes, training=training,
+                      task="regression")
+        streamed = fit_from_working_set(ws, block_rows=3000, **common)
+        inputs, y = ws.inputs("train")
+        in_memory = fit_network(inputs, y, **common)
+        test_inputs, test_y = ws.inputs("test")
+    log_test = np.log(test_y)
+    # Reference: scikit-learn's DummyRegressor (the training mean) and mean_squared_error on held-out rows.
+    baseline = mean_squared_error(log_test, DummyRegressor().fit(inputs.dense, y).predict(test_inputs.dense))
+    errors = {name: mean_squared_error(log_test, predict(result.model, test_inputs, "regression"))
+              for name, result in (("streamed", streamed), ("in memory", in_memory))}
+    assert errors["streamed"] < 0.2 * baseline, errors
+    assert errors["streamed"] < 1.5 * errors["in memory"], errors
+    assert len(streamed.history) >= 1 and all(np.isfinite(v).all() for v in streamed.vectors.values())

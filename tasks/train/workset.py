@@ -11,8 +11,8 @@ Built from the cleaned rows a streamed ingestion wrote (``tasks/ingest/stream.py
 3. **Encode.** Each batch is encoded by the fitted :class:`FeatureEncoder` and written into preallocated
    memory-mapped arrays, training rows and held-out rows apart.
 
-:meth:`WorkingSet.blocks` reads the training arrays back in a seeded random order of blocks with a shuffle
-inside each block, releasing the pages of each block after use, so memory stays at one block.
+:meth:`WorkingSet.blocks` reads the training arrays back as blocks of pieces from random places, shuffled
+inside each block, releasing the pages after each block, so memory stays at one block.
 """
 
 from __future__ import annotations
@@ -66,17 +66,30 @@ class WorkingSet:
         ids, dense, y = self.arrays(part)
         return EncodedInputs(np.asarray(ids, dtype=np.int64), np.array(dense)), np.array(y, dtype=np.float64)
 
-    def blocks(self, part: str, block_rows: int, seed: int) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """One pass over ``part`` in a seeded random order of blocks, rows shuffled inside each block."""
+    def blocks(
+        self, part: str, block_rows: int, seed: int, exclude: np.ndarray | None = None, mix: int = 16
+    ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """One pass over ``part`` in blocks of about ``block_rows`` rows, each made of ``mix`` pieces from random
+        places of the arrays (a seeded order of pieces), its rows shuffled together; rows at the sorted
+        positions ``exclude`` are left out.
+
+        Mixing pieces matters when the rows were written in an order that means something (sorted by time,
+        by price, by file): a block of neighbouring rows alone would give batches far from a random sample.
+        """
         ids, dense, y = self.arrays(part)
+        exclude = np.zeros(0, dtype=np.int64) if exclude is None else np.asarray(exclude, dtype=np.int64)
         n = len(y)
         rng = np.random.default_rng(seed)
-        starts = np.arange(0, n, block_rows)
-        for start in rng.permutation(starts):
-            stop = min(start + block_rows, n)
-            order = rng.permutation(stop - start)
-            order += start  # one gather straight from the mapping: no intermediate copy of the block
-            block = (np.take(ids, order, axis=0), np.take(dense, order, axis=0), np.take(y, order))
+        piece = max(1, block_rows // max(1, mix))
+        starts = rng.permutation(np.arange(0, n, piece))
+        for g in range(0, len(starts), mix):
+            group = np.sort(starts[g: g + mix])
+            positions = np.concatenate([np.arange(s, min(s + piece, n)) for s in group])
+            if len(exclude):
+                at = np.minimum(np.searchsorted(exclude, positions), len(exclude) - 1)
+                positions = positions[exclude[at] != positions]
+            positions = positions[rng.permutation(len(positions))]
+            block = (np.take(ids, positions, axis=0), np.take(dense, positions, axis=0), np.take(y, positions))
             for array in (ids, dense, y):
                 _release(array)
             yield block
