@@ -43,7 +43,7 @@ from entivec.tasks.ingest.read import (
 PARTITIONS = 64
 CLEANED = "cleaned.parquet"
 QUARANTINE = "quarantine.parquet"
-BATCH_ROWS = 1 << 20
+BATCH_ROWS = 1 << 18  # about 262,000 rows: a few hundred MB of pandas at most
 
 
 @dataclass
@@ -101,13 +101,15 @@ def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: in
             ids = ids[present]
             rows = offset + np.flatnonzero(present)
             part = _id_partition(ids)
-            for p in np.unique(part):
-                at = part == p
+            order = np.argsort(part, kind="stable")
+            bounds = np.searchsorted(part[order], np.arange(PARTITIONS + 1))
+            table = pa.table([pa.array(ids, pa.string()), pa.array(rows, pa.int64())], schema=schema).take(order)
+            for p in range(PARTITIONS):
+                if bounds[p + 1] == bounds[p]:
+                    continue
                 if p not in writers:
                     writers[p] = pa.ipc.new_file(str(folder / f"ids-{p:03d}.arrow"), schema)
-                batch = pa.record_batch([pa.array(ids.to_numpy()[at].astype(object), pa.string()),
-                                         pa.array(rows[at], pa.int64())], schema=schema)
-                writers[p].write_batch(batch)
+                writers[p].write_table(table.slice(bounds[p], bounds[p + 1] - bounds[p]))
     finally:
         for writer in writers.values():
             writer.close()
