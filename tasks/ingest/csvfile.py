@@ -160,8 +160,14 @@ def _pandas_like(frame: pd.DataFrame, text: set[str]) -> pd.DataFrame:
         try:
             frame[column] = pd.to_numeric(frame[column])
         except (ValueError, TypeError):
-            pass
+            # pandas reads a column of nothing but True/False spellings as booleans; so does this.
+            words = frame[column].dropna()
+            if len(words) and words.isin(list(_BOOLEANS)).all() and not frame[column].isna().any():
+                frame[column] = frame[column].map(_BOOLEANS).astype(bool)
     return frame
+
+
+_BOOLEANS = {"True": True, "TRUE": True, "true": True, "False": False, "FALSE": False, "false": False}
 
 
 def data_row_numbers(good: int, start: int, bad: np.ndarray) -> np.ndarray:
