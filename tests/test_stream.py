@@ -24,7 +24,7 @@ from entivec.tasks.ingest.clean import validate_and_clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint
 from entivec.tasks.ingest.read import read_source
 from entivec.tasks.ingest.split import split_rows
-from entivec.tasks.ingest.stream import stream_clean
+from entivec.tasks.ingest.stream import cleaned_table, stream_clean
 from entivec.tasks.ingest.workdir import working_set
 from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.vocabulary import build_vocabularies
@@ -74,7 +74,7 @@ def test_streamed_and_whole_table_paths_agree(tmp_path):
             (s.step, s.action): s.rows for s in whole.ledger.steps}
         assert streamed.ledger.rows_in == 20000 and streamed.ledger.rows_used == whole.ledger.rows_used
         assert streamed.fingerprint["sha256"] == data_fingerprint(raw, files)["sha256"]
-        cleaned = pd.read_parquet(streamed.cleaned)
+        cleaned = cleaned_table(streamed.cleaned).to_pandas()
         pd.testing.assert_frame_equal(cleaned, whole.frame, check_dtype=False)
         quarantined = pd.read_parquet(streamed.quarantine)
         assert sorted(quarantined["stone"]) == sorted(whole.quarantine["stone"].astype(str))
@@ -194,7 +194,7 @@ def test_a_stream_of_one_file_keeps_pyarrow_row_count(tmp_path):
     with working_set("test", tmp_path / "ws") as folder:
         streamed = stream_clean(spec, path, folder, batch_rows=500)
         # Reference: pyarrow's own Parquet metadata of what was written.
-        rows = sum(pq.ParquetFile(p).metadata.num_rows for p in (streamed.cleaned, streamed.quarantine))
+        rows = cleaned_table(streamed.cleaned).num_rows + pq.ParquetFile(streamed.quarantine).metadata.num_rows
     assert rows == 3000 == streamed.ledger.rows_in
 
 

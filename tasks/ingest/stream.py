@@ -8,7 +8,7 @@ Two passes over the source, each holding one batch at a time:
    fingerprint is fed here too.
 2. **Validate, rules, model-readiness.** Each batch goes through :func:`validate_and_clean` (the same pandera
    schema and rules as a table read whole), told which of its rows share an id with any other row. Cleaned
-   rows are appended to ``cleaned.parquet``, rejected ones with every reason to ``quarantine.parquet``, and the
+   rows are appended to ``cleaned.arrow``, rejected ones with every reason to ``quarantine.parquet``, and the
    batch ledgers are summed; at the end ``rows in = used + quarantined`` is checked for the whole table.
 """
 
@@ -41,7 +41,7 @@ from entivec.tasks.ingest.read import (
 )
 
 PARTITIONS = 64
-CLEANED = "cleaned.parquet"
+CLEANED = "cleaned.arrow"  # Arrow IPC: written and read back fast, columns memory-mapped on demand
 QUARANTINE = "quarantine.parquet"
 BATCH_ROWS = 1 << 18  # about 262,000 rows: a few hundred MB of pandas at most
 
@@ -162,7 +162,7 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
     cleaned_schema = None
     q_schema = _quarantine_schema(source, spec)
     newest = None
-    count = 0
+    count = used = 0
     time_column = spec.split.time_column
     try:
         quarantine_writer = pq.ParquetWriter(folder / QUARANTINE, q_schema)
@@ -180,10 +180,11 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
             table = pa.Table.from_pandas(typed, preserve_index=False)
             if cleaned_writer is None:
                 cleaned_schema = table.schema
-                cleaned_writer = pq.ParquetWriter(folder / CLEANED, cleaned_schema)
+                cleaned_writer = pa.ipc.new_file(str(folder / CLEANED), cleaned_schema)
             else:
                 table = table.cast(cleaned_schema)
             cleaned_writer.write_table(table)
+            used += table.num_rows
             if time_column:
                 times = parse_times(typed[time_column])
                 top = times.max()
@@ -194,7 +195,6 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
                 writer.close()
     seconds["validate and clean"] = time.perf_counter() - tick
     quarantined = pq.ParquetFile(folder / QUARANTINE).metadata.num_rows
-    used = pq.ParquetFile(folder / CLEANED).metadata.num_rows if cleaned_writer is not None else 0
     ledger.check(used, quarantined)
     if used == 0:
         top = sorted(ledger.quarantined_by_reason().items(), key=lambda kv: -kv[1])[:5]
@@ -205,7 +205,15 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
                          count, seconds)
 
 
+def cleaned_table(path: Path) -> pa.Table:
+    """The cleaned rows as an Arrow table over the memory-mapped file: columns are read when used."""
+    return pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+
+
 def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int = BATCH_ROWS) -> object:
     """The cleaned rows back, batch by batch, as pandas frames."""
-    for batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows, columns=columns):
+    table = cleaned_table(path)
+    if columns is not None:
+        table = table.select(columns)
+    for batch in table.to_batches(max_chunksize=batch_rows):
         yield batch.to_pandas()

@@ -24,12 +24,11 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pyarrow.parquet as pq
 
 from entivec.schemas.spec import Spec, SpecError
 from entivec.schemas.vocabulary import Vocabulary, category_strings
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
-from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, read_cleaned
+from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_table, read_cleaned
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder, numeric_stats
 
@@ -139,7 +138,7 @@ def build_working_set(
     }
     stats = []
     for col in spec.columns.numeric:
-        values = pq.read_table(streamed.cleaned, columns=[col.name]).column(0).to_numpy()
+        values = cleaned_table(streamed.cleaned).column(col.name).to_numpy()
         stats.append(numeric_stats(np.asarray(values, dtype=np.float64)[~is_test], col))
         del values
     encoder = FeatureEncoder.from_stats(spec, vocabularies, stats, {c: sorted(v) for c, v in levels.items()})
