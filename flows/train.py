@@ -158,7 +158,7 @@ def train(
                 stopped = outcomes.record_stop_task(spec, drift_report, fingerprint["sha256"])
                 raise drift.DriftStop(drift_report, stopped)
             notes.append(f"incremental: drift against production version {reference.version} passed")
-    train_rows, test_rows = split(cleaned.frame, spec.split)
+    train_rows, test_rows = split(cleaned.frame, spec.split, spec.id_name)
 
     start = earlier_version(spec.name, vocabulary_from) if vocabulary_from else reference
     previous = start.vector_set.vocabularies if start is not None else None

@@ -19,6 +19,7 @@ from entivec.schemas.review import ReviewSpec
 from entivec.schemas.strict import BOOL_FOR_NUMBER, Strict
 
 SPEC_VERSION = 1
+ROW_ID = "_row_id"  # the id column entivec adds when the spec names none: the row number in read order, as text
 MODEL_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}$"
 
 
@@ -89,10 +90,21 @@ class OneHotColumn(_Strict):
 
 
 class NumericColumn(_Strict):
+    """A numeric input. ``integer`` declares a count: whole numbers >= 0 only, anything else is quarantined.
+
+    ``impute: median`` lets missing values through and fills them with the training rows' median, adding an
+    indicator input ``<name>=missing`` (1 where the value was missing); the median travels with the vector set's
+    network encoder, so every later use (gate, apply) fills the same way. ``transform`` (``log``, ``log1p``) is
+    applied before standardising; values outside its domain (<= 0 for log, <= -1 for log1p) are quarantined.
+    """
+
     name: str
     min: float | None = None
     max: float | None = None
     nullable: bool = False
+    integer: bool = False
+    impute: Literal["none", "median"] = "none"
+    transform: Literal["none", "log", "log1p"] = "none"
 
     @model_validator(mode="after")
     def _ordered(self) -> NumericColumn:
@@ -174,16 +186,30 @@ Rule = Annotated[RangeRule | FillRule | DropMissingRule, Field(discriminator="ki
 
 
 class SplitSpec(_Strict):
-    method: Literal["random", "time"] = "random"
+    """``random``: a seeded share of the rows is held out. ``hash``: a row is held out when a seeded hash of its id
+    falls in the test share, so a row keeps its side in every re-run and every later drop, and a table read as a
+    stream splits batch by batch. ``time``: rows at or after a moment are held out, the
+    moment being a fixed ``cutoff`` or, with ``last_weeks``, that many weeks before the newest time in the data
+    (a window that rolls forward with every new drop)."""
+
+    method: Literal["random", "hash", "time"] = "random"
     test_fraction: Annotated[float, Field(gt=0, lt=1)] = 0.2
     seed: int = 0
     time_column: str | None = None
     cutoff: str | None = Field(None, description="Rows at or after this time are held out.")
+    last_weeks: Annotated[int, Field(ge=1, le=5200)] | None = Field(
+        None, description="Hold out the rows of the last N weeks before the newest time in the data."
+    )
 
     @model_validator(mode="after")
     def _time_needs_column(self) -> SplitSpec:
-        if self.method == "time" and (self.time_column is None or self.cutoff is None):
-            raise ValueError("a time split needs time_column and cutoff")
+        if self.method == "time":
+            if self.time_column is None or (self.cutoff is None and self.last_weeks is None):
+                raise ValueError("a time split needs time_column and cutoff (or last_weeks, for a rolling window)")
+            if self.cutoff is not None and self.last_weeks is not None:
+                raise ValueError("a time split takes cutoff (a fixed moment) or last_weeks (rolling), not both")
+        elif self.last_weeks is not None:
+            raise ValueError("last_weeks belongs to a time split (method: time)")
         return self
 
 
@@ -266,7 +292,7 @@ class Spec(_Strict):
     name: str = Field(pattern=MODEL_NAME_PATTERN)
     description: str = ""
     source: SourceSpec
-    id_column: str
+    id_column: str | None = Field(None, description="Without one, the row number in read order is the id.")
     target: TargetSpec
     columns: ColumnsSpec
     rules: list[Rule] = []
@@ -280,8 +306,8 @@ class Spec(_Strict):
 
     @model_validator(mode="after")
     def _columns_consistent(self) -> Spec:
-        roles: dict[str, str] = {self.id_column: "id_column", self.target.column: "target.column"}
-        if self.id_column == self.target.column:
+        roles: dict[str, str] = {self.id_name: "id_column", self.target.column: "target.column"}
+        if self.id_name == self.target.column:
             raise ValueError("id_column and target.column name the same column")
         for role, cols in (
             ("columns.embed", self.columns.embed),
@@ -307,6 +333,11 @@ class Spec(_Strict):
         return self
 
     # convenience -----------------------------------------------------------------------------------------------
+    @property
+    def id_name(self) -> str:
+        """The id column's name in the data: the spec's ``id_column``, or ROW_ID when rows are numbered instead."""
+        return self.id_column if self.id_column is not None else ROW_ID
+
     @property
     def embed_names(self) -> list[str]:
         return [c.name for c in self.columns.embed]
@@ -335,9 +366,26 @@ class Spec(_Strict):
         The ``drift`` and ``review`` sections are left out: the first decides whether a retrain runs, the second
         what the review page shows, neither what a run makes; specs written before them keep their hash.
         """
-        recipe = self.model_dump(mode="json", exclude={"drift", "review"})
+        recipe = _without_later_defaults(self.model_dump(mode="json", exclude={"drift", "review"}))
         canonical = json.dumps(recipe, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canonical.encode()).hexdigest()
+
+
+# Keys added after specs were first hashed; left out of the hash while at their defaults, so a spec that does not
+# use them keeps the hash it had (a retrain of unchanged data and spec is still recognised as such).
+_LATER_DEFAULTS = {"numeric": {"integer": False, "impute": "none", "transform": "none"}, "split": {"last_weeks": None}}
+
+
+def _without_later_defaults(recipe: dict) -> dict:
+    for column in recipe.get("columns", {}).get("numeric", []):
+        for key, default in _LATER_DEFAULTS["numeric"].items():
+            if column.get(key, default) == default:
+                column.pop(key, None)
+    split = recipe.get("split", {})
+    for key, default in _LATER_DEFAULTS["split"].items():
+        if split.get(key, default) == default:
+            split.pop(key, None)
+    return recipe
 
 
 # --- loading ----------------------------------------------------------------------------------------------------
