@@ -45,14 +45,15 @@ def transformer_vectors(store, frame, version="1", unknown="unknown_row") -> pd.
     return enc.fit(frame).transform(frame)
 
 
-def test_lookup_model_by_alias_matches_the_transformer(store):
+def test_lookup_model_by_alias_matches_the_transformer(store, monkeypatch):
     import mlflow
     from mlflow.exceptions import MlflowException
 
     from entivec.tasks.apply.lookup import UNKNOWN_RULES
     from entivec.tasks.lifecycle import registry
 
-    registry.client()  # points MLflow's tracking and registry at the test store
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", registry.client().uri)
     model = mlflow.pyfunc.load_model(f"models:/{store.name}@production")
     signature = model.metadata.signature
     assert signature.inputs.input_names() == ["clarity", "color", "cut"]

@@ -327,6 +327,8 @@ def _network_checks(
     for label, version in versions.items():
         try:
             pred = network_predictions(version, rows)
+        except registry.RegistryUnavailable:
+            raise  # a store that cannot be read is not a network that cannot be loaded
         except Exception as exc:  # noqa: BLE001 - context only: a network that cannot be loaded is reported
             return [Check("network", "networks on the judged rows", None, f"could not be evaluated: {exc}")]
         if pred is None:
