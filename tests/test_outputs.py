@@ -341,15 +341,3 @@ def test_any_csv_for_people_gets_the_same_guard():
     rows = list(csv.reader(safe.to_csv(index=False).splitlines()))  # Python's csv module reads it back
     assert [r[3] for r in rows[1:]] == ["'@ops", "a.person", "'-"]
 
-
-def test_every_user_error_the_cli_names_is_where_it_is_defined():
-    """The CLI matches user errors by the defining module's name (to avoid importing them): a class moved to
-    another module must be renamed there too, or its errors exit 1 with a traceback instead of 2."""
-    import importlib
-
-    from entivec.cli import USER_ERRORS
-
-    for name in sorted(USER_ERRORS):
-        module, cls = name.rsplit(".", 1)
-        found = getattr(importlib.import_module(module), cls)
-        assert f"{found.__module__}.{found.__qualname__}" == name
