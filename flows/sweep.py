@@ -223,7 +223,7 @@ def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
     raw, files = ingest(spec, spec_path)
     cleaned = clean(raw, spec, files)
     shown.end(len(raw), f"{len(cleaned.frame):,} kept, {len(cleaned.quarantine):,} quarantined")
-    train_rows, test_rows = split(cleaned.frame, spec.split)
+    train_rows, test_rows = split(cleaned.frame, spec.split, spec.id_name)
     vocabularies = build_vocabularies_task(train_rows, spec, None)
     encoder = FeatureEncoder.fit(train_rows, spec, vocabularies)
     train_inputs, test_inputs = encoder.transform(train_rows), encoder.transform(test_rows)

@@ -40,6 +40,7 @@ def _register_support_module(name: str, filename: str) -> None:
 
 _register_support_module("entivec_test_vector_fixtures", "vector_fixtures.py")
 _register_support_module("entivec_test_lifecycle_support", "lifecycle_support.py")
+_register_support_module("entivec_test_browser_support", "browser_support.py")
 
 
 # What the markers in pyproject.toml promise, applied by what a test uses (checked by tests/test_markers.py):

@@ -256,3 +256,17 @@ def test_degenerate_tables_end_in_a_clear_message(case, fragment, run_cli, regis
     assert code == 2, output
     assert fragment in " ".join(output.split()) and "ValueError" not in output, output
     assert registered_versions(lifecycle.MODEL) == 0
+
+
+def test_every_user_error_named_by_the_cli_exists():
+    """The CLI matches user errors by their defining module and name (so read commands need not import them):
+    a class moved to another module must be renamed there too, or its errors would exit 1 with a traceback hint."""
+    import importlib
+
+    from entivec.cli import USER_ERRORS
+
+    for qualified in sorted(USER_ERRORS):
+        module, _, name = qualified.rpartition(".")
+        found = getattr(importlib.import_module(module), name, None)
+        assert isinstance(found, type) and issubclass(found, BaseException), qualified
+        assert f"{found.__module__}.{found.__qualname__}" == qualified, f"{qualified} is defined elsewhere"

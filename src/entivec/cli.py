@@ -30,11 +30,12 @@ EXIT_FAILED = 1  # anything else
 USER_ERRORS = frozenset({
     "entivec.schemas.spec.SpecError",
     "entivec.settings.SettingsError",
-    "entivec.tasks.ingest.read.InputError",  # DriftStop and the apply job's input errors are InputErrors
-    "entivec.tasks.lifecycle.registry.RegistryError",  # LifecycleError (rollback with nothing to go back to)
+    "entivec.tasks.ingest.common.InputError",  # DriftStop and the apply job's input errors are InputErrors
+    "entivec.tasks.lifecycle.store.RegistryError",  # LifecycleError (rollback with nothing to go back to)
     "entivec.schemas.ledger.LedgerMismatch",
     "entivec.tasks.apply.lookup.UnknownCategoryError",
     "entivec.tasks.apply.lookup.CategoryTypeError",
+    "entivec.tasks.apply.outputs.OutputError",  # disk full, no permission: the output folder is left as it was
 })
 
 
@@ -258,7 +259,7 @@ def demo(
     from entivec.demo import recovered_structure, write_demo
     from entivec.flows.train import train as train_flow
     from entivec.settings import project_home, tracking_uri
-    from entivec.tasks.apply.export import export_vector_set
+    from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
     spec_path = write_demo(out, rows=rows)
@@ -266,7 +267,8 @@ def demo(
     outcome = _run(lambda: train_flow(str(spec_path)))
     loaded = registry.load_version(outcome.name, outcome.version)
     export_dir = out / "vectors"
-    export_vector_set(loaded.vector_set, export_dir)
+    export_vector_set(loaded.vector_set, export_dir, export_source(
+        outcome.name, loaded.version, loaded.run_id, loaded.vector_set, "staging", registry.aliases_of(outcome.name)))
     vs = loaded.vector_set
     depot_rho = recovered_structure(
         vs.vectors["depot"], vs.vocabularies["depot"].categories, pd.read_csv(out / "truth" / "depots.csv"),
@@ -298,7 +300,8 @@ def _register_command_groups() -> None:
     """Commands that live beside the flows they drive register themselves here."""
     import importlib
 
-    for module in ("entivec.cli_read", "entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule"):
+    for module in ("entivec.cli_read", "entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule",
+                   "entivec.cli_review"):
         importlib.import_module(module).register(app)
 
 
@@ -310,8 +313,14 @@ def main() -> None:
 
     # The command, not `import entivec`, applies the settings: before anything imports Prefect or MLflow.
     apply_environment_defaults()
+    from entivec import stopping
+
+    stopping.install()  # SIGTERM / SIGINT end the command cleanly (143 / 130); no temporary server outlives it
     try:
         app()
+    except stopping.Stopped as stop:
+        errors.print(f"stopped by {stop.signal_name}")
+        stopping.finish(stop)
     except KeyboardInterrupt:
         errors.print("interrupted")
         sys.exit(130)

@@ -164,13 +164,16 @@ def history(
             record["moved"] = entry.moved
             records.append(record)
         text = to_json(records)
-    else:
-        text = to_csv(frame)
+    else:  # reasons are typed by people: no live formulas in a spreadsheet (OWASP CSV injection)
+        from entivec.tasks.apply.export import spreadsheet_safe
+
+        text = to_csv(spreadsheet_safe(frame))
     if out is None:
         typer.echo(text, nl=not text.endswith("\n"))
     else:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
+        from entivec.tasks.apply.outputs import write_text_atomically
+
+        cli._run(lambda: write_text_atomically(out, text, "the history"))
         cli.console.print(f"wrote {len(entries)} history entries to {out}")
 
 

@@ -108,13 +108,19 @@ def export(
     version: Annotated[str, typer.Argument(help="Version number or alias (staging, production).")],
     out: Annotated[Path, typer.Option("--out", help="Folder to write the tables into.")],
 ) -> None:
-    """Write each column's vectors as Parquet, CSV and .npy (id, category, count, is_unknown, v0…) and vocabulary."""
-    from entivec.tasks.apply.export import export_vector_set
+    """Write each column's vectors as Parquet, CSV and .npy, with its vocabulary, all files or none.
+
+    Tables: id, category, count, is_unknown (and confidence figures when the version has them), then
+    <column>__vec0…; manifest.json names the model, version, run, aliases and data they come from.
+    """
+    from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
     cli = _base()
     loaded = cli._run(lambda: registry.load_version(name, version))
-    written = cli._run(lambda: export_vector_set(loaded.vector_set, out))
+    source = export_source(name, loaded.version, loaded.run_id, loaded.vector_set, version,
+                           cli._run(lambda: registry.aliases_of(name)))
+    written = cli._run(lambda: export_vector_set(loaded.vector_set, out, source))
     cli.console.print(f"{name} version {loaded.version}: wrote {len(written)} files to {out}", soft_wrap=True)
 
 
