@@ -23,7 +23,7 @@ import pandas as pd
 import pytest
 import yaml
 
-pytestmark = pytest.mark.integration
+# Tests given the Prefect test server are marked integration by tests/conftest.py; the others run no flow.
 
 
 @pytest.fixture

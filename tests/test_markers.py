@@ -54,14 +54,16 @@ def test_markers_select_what_they_promise(tmp_path):
     assert len(items) > 100, len(items)
     by_id = {item["id"]: item for item in items}
 
-    # integration: "runs real Prefect flows against a real MLflow store" -> every test given the Prefect test
-    # server or the team stack is marked, and no test without them is.
+    # integration: "runs real Prefect flows against a real MLflow store, or pages in a real browser" -> every
+    # test given the Prefect test server or the team stack is marked, and no test without a flow, a store, a
+    # server or a browser is.
     flows = {i["id"] for i in items if {"prefect_server", "stack"} & set(i["fixtures"])}
     integration = {i["id"] for i in items if "integration" in i["markers"]}
     assert flows - integration == set(), sorted(flows - integration)
     unmarked_reasons = {i for i in integration - flows
-                        if "entivec_home" not in by_id[i]["fixtures"] and "services" not in by_id[i]["markers"]}
-    assert unmarked_reasons == set(), f"marked integration but use no flow, store or server: {sorted(unmarked_reasons)}"
+                        if not {"entivec_home", "browser"} & set(by_id[i]["fixtures"])
+                        and "services" not in by_id[i]["markers"]}
+    assert unmarked_reasons == set(), f"integration without flow, store, server or browser: {sorted(unmarked_reasons)}"
 
     # services: "starts real servers" -> the team-stack tests that get the stack (or start one themselves).
     services = {i["id"] for i in items if "services" in i["markers"]}
