@@ -12,6 +12,8 @@ Stage table (the train flow's steps called as plain functions, in the flow's ord
                      out-of-fold vectors, and the leaky in-sample contrast) on the seeded downstream sample
                      (evaluation.max_train_rows), scored on the seeded test sample (evaluation.max_test_rows),
                      with the paired bootstrap intervals
+  seed check         a second network on the same rows with another seed (evaluation.seed_check), printed apart:
+                     it is not part of the evaluation the ratio covers, and doubles the training when on
 Each line prints its wall time, the load average and the CPU pressure (Linux PSI, share of time a task waited
 for a CPU) measured when it ended; the last line is evaluation / training.
 
@@ -45,6 +47,7 @@ from entivec.schemas.vocabulary import Vocabulary  # noqa: E402
 from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables  # noqa: E402
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids  # noqa: E402
 from entivec.tasks.evidence.downstream import capped_rows, compare_downstream  # noqa: E402
+from entivec.tasks.evidence.stability import seed_stability  # noqa: E402
 from entivec.tasks.train.encoder import FeatureEncoder  # noqa: E402
 from entivec.tasks.train.network import predict  # noqa: E402
 from entivec.tasks.train.trainer import fit_network  # noqa: E402
@@ -137,7 +140,19 @@ def stages(args) -> None:
     print(f"downstream models   {times['downstream models']:8.1f} s   ({load()})", flush=True)
     evaluation = times["fold networks"] + times["downstream models"]
     print(f"evaluation total    {evaluation:8.1f} s   evaluation / training = "
-          f"{evaluation / times['train vectors']:.2f}")
+          f"{evaluation / times['train vectors']:.2f}", flush=True)
+
+    start = time.perf_counter()  # the seed check (evaluation.seed_check): a second network, another seed
+    reseeded = fit_network(train_inputs, y_train, columns=spec.embed_names, cardinalities=cards, sizes=sizes,
+                           training=spec.training.model_copy(update={"seed": spec.training.seed + 1_000}),
+                           task="regression")
+    stability = seed_stability(vocabularies, result.vectors, reseeded.vectors)
+    times["seed check"] = time.perf_counter() - start
+    print(f"seed check          {times['seed check']:8.1f} s   ({load()}); with it, evaluation / training = "
+          f"{(evaluation + times['seed check']) / times['train vectors']:.2f}")
+    for col, figures in stability.items():
+        print(f"  {col}: seed overlap {figures['seed_neighbour_overlap']:.3f} (chance "
+              f"{figures['seed_chance_overlap']:.3f}), aligned distance {figures['seed_aligned_distance']:.3f}")
     print()
     print(evidence.summary)
 
