@@ -47,7 +47,7 @@ def write_case(folder, frame: pd.DataFrame, **overrides) -> str:
     return str(path)
 
 
-def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame):
+def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch):
     from entivec.flows.train import train
     from entivec.tasks.lifecycle import registry
 
@@ -89,13 +89,15 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert {"spec.yaml", "data", "vector_set", "network", "evidence", "plots", "summary.md"} <= artifacts
     plots = {a.path for a in client.list_artifacts(outcome.run_id, "plots")}
     assert {"plots/loss_curves.png", "plots/vectors_clarity.png", "plots/downstream_comparison.png"} <= plots
-    ledger_file = mlflow.artifacts.download_artifacts(
+    ledger_file = registry.download(
         run_id=outcome.run_id, artifact_path="data/ledger.json", dst_path=str(tmp_path / "dl")
     )
     ledger = json.loads(open(ledger_file).read())
     assert ledger["rows_in"] == ledger["rows_used"] + ledger["rows_quarantined"] == ROWS
 
     # The registered lookup model answers with the same vectors.
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", client.uri)
     model = mlflow.pyfunc.load_model("models:/stone-prices@staging")
     out = model.predict(pd.DataFrame({"clarity": ["IF", "never-seen"], "color": ["D", None]}))
     expected = loaded.vector_set.lookup("clarity", ["IF", "never-seen"])

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import orthogonal_procrustes
 
 
 def align_to(
@@ -14,7 +15,8 @@ def align_to(
     Both matrices have one row per vocabulary id and the same shape. With A and B the chosen rows of each,
     centred on their own means, the rotation R is the orthogonal matrix minimising ||A R - B||_F, which is
     U Vᵀ for the singular value decomposition A ᵀB = U S Vᵀ (Schönemann, "A generalized solution of the
-    orthogonal Procrustes problem", Psychometrika 1966). The whole of ``source`` is then moved:
+    orthogonal Procrustes problem", Psychometrika 1966), computed by ``scipy.linalg.orthogonal_procrustes``.
+    The whole of ``source`` is then moved:
     (source - mean_A) R + mean_B. R may include a reflection; no scaling is applied.
 
     ``rows`` are vocabulary ids (integers) or a boolean mask; the default is every row but 0, the unknown row,
@@ -48,7 +50,10 @@ def align_to(
         if (w < 0).any() or not np.isfinite(w).all() or w.sum() <= 0:
             raise ValueError("weights must be finite, non-negative and not all zero on the rows aligned on")
         w = w / w.sum()
-    mean_a, mean_b = w @ a, w @ b
-    u, _, vt = np.linalg.svd(((a - mean_a) * w[:, None]).T @ (b - mean_b))
-    rotation = u @ vt
+    mean_a, mean_b = (a.mean(axis=0), b.mean(axis=0)) if weights is None else (w @ a, w @ b)
+    # Weighted orthogonal Procrustes is the plain problem on rows scaled by the square roots of the weights. Equal
+    # weights are left unscaled: with fewer rows than dimensions the rotation is not unique, and an unscaled
+    # problem gives the same choice as the textbook computation the tests compare with.
+    root = 1.0 if weights is None else np.sqrt(w)[:, None]
+    rotation, _ = orthogonal_procrustes((a - mean_a) * root, (b - mean_b) * root)
     return (src - mean_a) @ rotation + mean_b
