@@ -218,8 +218,11 @@ def versions(name: Annotated[str, typer.Argument(help="Registered model name.")]
             if k.startswith("entivec.network_")
         )
         created = datetime.fromtimestamp(mv.creation_timestamp / 1000, UTC).strftime("%Y-%m-%d %H:%M:%S")
+        # A registration that never finished: refused by export, apply and promote until a lifecycle command
+        # (e.g. `entivec history NAME`) removes or completes it.
+        state = " (incomplete)" if registry.is_incomplete(mv) else ""
         table.add_row(
-            str(mv.version), ", ".join(sorted(by_version.get(str(mv.version), []))), created,
+            f"{mv.version}{state}", ", ".join(sorted(by_version.get(str(mv.version), []))), created,
             tags.get("entivec.data_fingerprint", "")[:12], tags.get("entivec.rows_used", ""),
             metrics, tags.get("entivec.vectors_help", ""),
         )
