@@ -191,6 +191,7 @@ class GateResult:
     primary_metric: str
     data_fingerprint: str
     policy: dict[str, Any]
+    data_source: str = ""  # the spec's source (file or glob) the judged rows came from
 
     @property
     def failed(self) -> list[Check]:
@@ -297,7 +298,7 @@ def run_gate(
         rows=len(judged.frame), rows_note=f"{len(judged.frame):,} of {judged.held_out:,} held-out rows of the newest "
         f"data; " + "; ".join(judged.notes.values()),
         how=how, primary_metric=PRIMARY[spec.target.task], data_fingerprint=data_fingerprint,
-        policy=policy.model_dump(mode="json"),
+        policy=policy.model_dump(mode="json"), data_source=str(spec.source.path),
     )
 
 

@@ -25,16 +25,15 @@ import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.settings import project_home
-from entivec.tasks.apply import lookup
-from entivec.tasks.apply.served import signature_for
-from entivec.tasks.lifecycle import registry
+from entivec.tasks.lifecycle import lineage, registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
 MAX_PARAM_LENGTH = 500
 MODEL_ARTIFACT = "lookup_model"  # the registered pyfunc model's folder inside the train run
 # Read by MLflow, never imported here: importing it would declare the model as a side effect.
-LOOKUP_MODEL_CODE = Path(lookup.__file__).with_name("lookup_model_entry.py")
+# By path, not by importing the apply room: that would load torch into every command that only reads runs.
+LOOKUP_MODEL_CODE = Path(__file__).parents[1] / "apply" / "lookup_model_entry.py"
 
 
 def operator() -> str:
@@ -119,6 +118,7 @@ def record_run(
         for start in range(0, len(everything), 900):
             c.log_batch(run_id, metrics=everything[start : start + 900])
         c.set_tag(run_id, "mlflow.note.content", summary)
+        lineage.log_data_input(c, run_id, spec.source.path, fingerprint, spec.name, "training")
         c.log_artifacts(run_id, str(bundle))
     return run_id
 
@@ -134,22 +134,28 @@ def register_version(
     """
     import mlflow.pyfunc
 
+    from entivec.tasks.apply.served import example_warnings_quiet, input_example_for, signature_for
+
     vector_set = VectorSet.load(vector_set_folder)
     c = registry.client()
     project_home().mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory(prefix="model-", dir=project_home()) as scratch:
         model_dir = Path(scratch) / MODEL_ARTIFACT
-        mlflow.pyfunc.save_model(
-            path=str(model_dir),
-            # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
-            python_model=str(LOOKUP_MODEL_CODE),
-            artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
-            signature=signature_for(vector_set),
-            pip_requirements=LOOKUP_REQUIREMENTS,
-        )
+        with example_warnings_quiet():
+            mlflow.pyfunc.save_model(
+                path=str(model_dir),
+                # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
+                python_model=str(LOOKUP_MODEL_CODE),
+                artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
+                signature=signature_for(vector_set),
+                input_example=input_example_for(vector_set),
+                pip_requirements=LOOKUP_REQUIREMENTS,
+            )
         c.log_artifacts(run_id, str(model_dir), MODEL_ARTIFACT)
     source = f"{c.get_run(run_id).info.artifact_uri.rstrip('/')}/{MODEL_ARTIFACT}"
-    return registry.create_version(spec.name, source=source, run_id=run_id, tags=version_tags)
+    version = registry.create_version(spec.name, source=source, run_id=run_id, tags=version_tags)
+    lineage.describe(c, spec.name, version, spec.description)
+    return version
 
 
 @task(name="record-run", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
@@ -204,13 +210,14 @@ def copy_into(src: Path, dst: Path) -> None:
     shutil.copy2(src, dst)
 
 
-RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "data_fingerprint", "user", "run_id", "note"]
+RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "verdict", "data_fingerprint", "user", "run_id", "note"]
 
 
 def run_log(name: str, limit: int = 50) -> pd.DataFrame:
     """The runs of a model's experiment, newest first: trains, skips ("no new data"), drift stops, gates, sweeps.
 
-    ``version`` is the registered version a train run became, if any. ``note`` is the first line of the run's
+    ``version`` is the registered version a train run became, or the candidate a gate run judged (``verdict``
+    pass, fail or forced). ``note`` is the first line of the run's
     note (its summary, or the reason nothing was trained). Versions tell what was made; this tells what was
     attempted, which is where a scheduled run that trained nothing leaves its trace.
     """
@@ -230,7 +237,9 @@ def run_log(name: str, limit: int = 50) -> pd.DataFrame:
             "started": datetime.fromtimestamp(run.info.start_time / 1000, UTC).isoformat(timespec="seconds"),
             "kind": tags.get(f"{registry.TAG_PREFIX}kind", ""),
             "status": run.info.status,
-            "version": by_run.get(run.info.run_id, ""),
+            # A gate run judged a candidate: its version and verdict are in the run's tags.
+            "version": by_run.get(run.info.run_id, tags.get(f"{registry.TAG_PREFIX}candidate_version", "")),
+            "verdict": tags.get(f"{registry.TAG_PREFIX}verdict", ""),
             "data_fingerprint": tags.get(f"{registry.TAG_PREFIX}data_fingerprint", "")[:12],
             "user": tags.get("mlflow.user", ""),
             "run_id": run.info.run_id,
