@@ -82,7 +82,7 @@ def shrunk_store(tmp_path_factory):
         yield store, vs, version
 
 
-def test_transformer_batch_and_served_model_shrink_identically(shrunk_store, tmp_path):
+def test_transformer_batch_and_served_model_shrink_identically(shrunk_store, tmp_path, monkeypatch):
     import mlflow
 
     from entivec.tasks.apply.batch import apply_file
@@ -105,7 +105,7 @@ def test_transformer_batch_and_served_model_shrink_identically(shrunk_store, tmp
                input_path=source, output_path=tmp_path / "out.parquet", chunk_rows=700)
     by_batch = pd.read_parquet(tmp_path / "out.parquet")[vector_columns]
 
-    registry.client()
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", registry.client().uri)  # entivec sets no process-wide MLflow URI
     by_model = mlflow.pyfunc.load_model(f"models:/{NAME}/{version}").predict(frame)[vector_columns]
 
     # Bit-identical across the three consumers...
