@@ -16,7 +16,8 @@ import pytest
 
 from entivec.schemas.vector_set import CONFIDENCE_COLUMNS
 from entivec.schemas.vocabulary import UNKNOWN, Vocabulary
-from entivec.tasks.apply.lookup import ColumnLookup, shrink_weights, shrunk_matrix
+from entivec.tasks.apply.lookup import ColumnLookup
+from entivec.tasks.apply.shrink import shrink_weights, shrunk_matrix
 
 NAME = "stones-shrunk"
 SHRINK = {"rule": "toward_mean", "scale": 0.5, "replace_above": None}
@@ -105,7 +106,8 @@ def test_transformer_batch_and_served_model_shrink_identically(shrunk_store, tmp
                input_path=source, output_path=tmp_path / "out.parquet", chunk_rows=700)
     by_batch = pd.read_parquet(tmp_path / "out.parquet")[vector_columns]
 
-    monkeypatch.setenv("MLFLOW_TRACKING_URI", registry.client().uri)  # entivec sets no process-wide MLflow URI
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", registry.client().uri)
     by_model = mlflow.pyfunc.load_model(f"models:/{NAME}/{version}").predict(frame)[vector_columns]
 
     # Bit-identical across the three consumers...
