@@ -188,7 +188,7 @@ def test_registration_logs_an_input_example_and_the_spec_description(store, tmp_
                 or "range is deprecated" in str(w.message)]
     assert c.get_registered_model(name).description == description
     assert c.get_model_version(name, version).description == description
-    monkeypatch.setenv("MLFLOW_TRACKING_URI", c.uri)  # entivec sets no process-wide MLflow URI
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", c.uri)  # entivec sets no process-wide URI; a user names the store
     model = mlflow.pyfunc.load_model(f"models:/{name}/{version}")
     example = model.input_example
     assert list(example.columns) == ["clarity", "color", "cut"] and len(example) == 2
