@@ -22,7 +22,7 @@ from entivec.tasks.ingest.split import split
 from entivec.tasks.lifecycle import audit, drift, outcomes, profile, registry
 from entivec.tasks.lifecycle import rows as held_rows
 from entivec.tasks.lifecycle.bundle import BundleInputs, write_bundle_task
-from entivec.tasks.lifecycle.track import record_run_task, register_version_task
+from entivec.tasks.lifecycle.track import complete_version_task, record_run_task, register_version_task
 from entivec.tasks.present import plots, report, review
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import FeatureEncoder
@@ -56,7 +56,13 @@ def check_ledger(cleaned) -> None:
     cleaned.ledger.check(rows_used=len(cleaned.frame), rows_quarantined=len(cleaned.quarantine))
 
 
-@task(name="earlier-version", retries=2, retry_delay_seconds=2)
+@task(name="check-store", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
+def check_store(name: str) -> str:
+    """The tracking store answers and takes writes: found out in seconds, before minutes of training."""
+    return registry.check_store(name)
+
+
+@task(name="earlier-version", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
 def earlier_version(name: str, version_or_alias: str) -> registry.LoadedVersion:
     return registry.load_version(name, version_or_alias)
 
@@ -70,6 +76,33 @@ def _no_new_data(spec: Spec, same, fingerprint: dict) -> TrainOutcome:
                f"nothing was trained (recorded in MLflow run {run_id})")
     return TrainOutcome(spec.name, str(same.version), run_id, fingerprint["rows"], used, fingerprint["rows"] - used,
                         tags.get("entivec.vectors_help") == "true", summary, status="no-new-data", note=summary)
+
+
+REPORT_TAG = "entivec.report"
+
+
+def publish_report_or_warn(name: str, version: str) -> str:
+    """Publish the version report and the review page; a failure is a recorded warning, never a failed run.
+
+    The version is complete and staged by then: its vectors, evidence and history do not depend on the HTML
+    report, which ``entivec report NAME VERSION`` can write again. A failure is logged as a warning, tagged on
+    the version (``entivec.report``) and kept as a ``report_failed`` history entry; the command exits 0.
+    """
+    try:
+        report.publish_version_report_task(name, version)
+        review.publish_review_page_task(name, version)
+        return ""
+    except Exception as exc:  # noqa: BLE001 - recorded below, with the way to redo it
+        cause = f"{type(exc).__name__}: {str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"[:400]
+    warning = (f"warning: the report of {name} version {version} was not written ({cause}); the version is "
+               f"registered and staged; write it with `entivec report {name} {version}`")
+    get_run_logger().warning(warning)
+    try:
+        registry.client().set_model_version_tag(name, version, REPORT_TAG, f"failed: {cause}")
+        audit.record_note(name, version, event="report_failed", reason=warning)
+    except (registry.RegistryError, audit.AuditError) as exc:
+        warning += f" (and the warning could not be recorded: {exc})"
+    return warning
 
 
 @flow(name="train", validate_parameters=False)
@@ -94,6 +127,7 @@ def train(
     if warm_start and not (incremental or vocabulary_from):
         raise ValueError("warm_start needs a version to start from: incremental=True (production) or vocabulary_from")
     spec, spec_text = read_spec(spec_path)
+    check_store(spec.name)
     if source is not None:
         spec = drift.with_source(spec, source)
     raw, files = ingest(spec, spec_path)
@@ -193,6 +227,9 @@ def train(
             **({"entivec.incremental": "; ".join(notes)} if notes else {}),
             **{f"entivec.network_{k}": f"{v:.6g}" for k, v in network_metrics.items()},
         }
+        # Intent first: the version is created tagged "registering" and marked complete only after its alias
+        # and history entry are written. A failure in between deletes it again (rollback); a kill leaves it
+        # incomplete, refused by every command and settled by the next lifecycle command.
         with transaction():
             version = register_version_task(
                 spec=spec, run_id=run_id, vector_set_folder=vector_folder, version_tags=tags
@@ -202,10 +239,12 @@ def train(
                 reason=f"trained from {spec_path}" + "".join(f"; {n}" for n in notes),
                 data_fingerprint=fingerprint["sha256"], details={"run_id": run_id, "spec_hash": spec.content_hash()},
             )
+            complete_version_task(spec.name, version)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
-    report.publish_version_report_task(spec.name, version)
-    review.publish_review_page_task(spec.name, version)
+    warning = publish_report_or_warn(spec.name, version)
+    if warning:
+        notes.append(warning)
 
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,

@@ -47,7 +47,7 @@ def write_case(folder, frame: pd.DataFrame, **overrides) -> str:
     return str(path)
 
 
-def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame):
+def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch):
     from entivec.flows.train import train
     from entivec.tasks.lifecycle import registry
 
@@ -81,13 +81,15 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     # the review page and the group file its map is coloured by (spec review.groups) travel with the run
     review = {a.path for a in client.list_artifacts(outcome.run_id, "review")}
     assert {"review/review.html", "review/groups.json"} <= review
-    ledger_file = mlflow.artifacts.download_artifacts(
+    ledger_file = registry.download(
         run_id=outcome.run_id, artifact_path="data/ledger.json", dst_path=str(tmp_path / "dl")
     )
     ledger = json.loads(open(ledger_file).read())
     assert ledger["rows_in"] == ledger["rows_used"] + ledger["rows_quarantined"] == ROWS
 
     # The registered lookup model answers with the same vectors.
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", client.uri)
     model = mlflow.pyfunc.load_model("models:/stone-prices@staging")
     out = model.predict(pd.DataFrame({"clarity": ["IF", "never-seen"], "color": ["D", None]}))
     expected = loaded.vector_set.lookup("clarity", ["IF", "never-seen"])

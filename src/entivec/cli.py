@@ -33,10 +33,11 @@ def _fail(message: str, code: int = EXIT_INPUT) -> None:
 def _user_errors() -> tuple[type[BaseException], ...]:
     from entivec.schemas.ledger import LedgerMismatch
     from entivec.schemas.spec import SpecError
+    from entivec.tasks.apply.outputs import OutputError
     from entivec.tasks.ingest.read import InputError
     from entivec.tasks.lifecycle.registry import RegistryError
 
-    return (SpecError, InputError, RegistryError, LedgerMismatch)
+    return (SpecError, InputError, RegistryError, LedgerMismatch, OutputError)
 
 
 def _run(call):
@@ -232,12 +233,18 @@ def export(
     version: Annotated[str, typer.Argument(help="Version number or alias (staging, production).")],
     out: Annotated[Path, typer.Option("--out", help="Folder to write the tables into.")],
 ) -> None:
-    """Write each column's vectors as Parquet, CSV and .npy (id, category, count, is_unknown, v0…) and vocabulary."""
-    from entivec.tasks.apply.export import export_vector_set
+    """Write each column's vectors as Parquet, CSV and .npy, with its vocabulary, all files or none.
+
+    Tables: id, category, count, is_unknown (and confidence figures when the version has them), then
+    <column>__vec0…; manifest.json names the model, version, run, aliases and data they come from.
+    """
+    from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
     loaded = _run(lambda: registry.load_version(name, version))
-    written = _run(lambda: export_vector_set(loaded.vector_set, out))
+    source = export_source(name, loaded.version, loaded.run_id, loaded.vector_set, version,
+                           _run(lambda: registry.aliases_of(name)))
+    written = _run(lambda: export_vector_set(loaded.vector_set, out, source))
     console.print(f"{name} version {loaded.version}: wrote {len(written)} files to {out}")
 
 
@@ -252,7 +259,7 @@ def demo(
     from entivec.demo import recovered_structure, write_demo
     from entivec.flows.train import train as train_flow
     from entivec.settings import project_home, tracking_uri
-    from entivec.tasks.apply.export import export_vector_set
+    from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
     spec_path = write_demo(out, rows=rows)
@@ -260,7 +267,8 @@ def demo(
     outcome = _run(lambda: train_flow(str(spec_path)))
     loaded = registry.load_version(outcome.name, outcome.version)
     export_dir = out / "vectors"
-    export_vector_set(loaded.vector_set, export_dir)
+    export_vector_set(loaded.vector_set, export_dir, export_source(
+        outcome.name, loaded.version, loaded.run_id, loaded.vector_set, "staging", registry.aliases_of(outcome.name)))
     vs = loaded.vector_set
     depot_rho = recovered_structure(
         vs.vectors["depot"], vs.vocabularies["depot"].categories, pd.read_csv(out / "truth" / "depots.csv"),
@@ -300,8 +308,14 @@ _register_command_groups()
 
 
 def main() -> None:
+    from entivec import stopping
+
+    stopping.install()  # SIGTERM / SIGINT end the command cleanly (143 / 130); no temporary server outlives it
     try:
         app()
+    except stopping.Stopped as stop:
+        errors.print(f"stopped by {stop.signal_name}")
+        stopping.finish(stop)
     except KeyboardInterrupt:
         errors.print("interrupted")
         sys.exit(130)

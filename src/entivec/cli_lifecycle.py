@@ -143,15 +143,18 @@ def history(
         return
     if fmt is HistoryFormat.json:
         text = audit.history_json(entries)
-    elif fmt is HistoryFormat.csv:
-        text = frame.to_csv(index=False)
+    elif fmt is HistoryFormat.csv:  # reasons are typed by people: no live formulas in a spreadsheet (OWASP)
+        from entivec.tasks.apply.export import spreadsheet_safe
+
+        text = spreadsheet_safe(frame).to_csv(index=False)
     else:
         text = frame.to_string(index=False)
     if out is None:
         typer.echo(text, nl=not text.endswith("\n"))
     else:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
+        from entivec.tasks.apply.outputs import write_text_atomically
+
+        cli._run(lambda: write_text_atomically(out, text, "the history"))
         cli.console.print(f"wrote {len(entries)} history entries to {out}")
 
 

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import orthogonal_procrustes
 
 
 def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
@@ -12,7 +13,8 @@ def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None 
     Both matrices have one row per vocabulary id and the same shape. With A and B the chosen rows of each,
     centred on their own means, the rotation R is the orthogonal matrix minimising ||A R - B||_F, which is
     U Vᵀ for the singular value decomposition A ᵀB = U S Vᵀ (Schönemann, "A generalized solution of the
-    orthogonal Procrustes problem", Psychometrika 1966). The whole of ``source`` is then moved:
+    orthogonal Procrustes problem", Psychometrika 1966), computed by ``scipy.linalg.orthogonal_procrustes``.
+    The whole of ``source`` is then moved:
     (source - mean_A) R + mean_B. R may include a reflection; no scaling is applied.
 
     ``rows`` are vocabulary ids (integers) or a boolean mask; the default is every row but 0, the unknown row,
@@ -37,6 +39,5 @@ def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None 
         raise ValueError("align_to needs at least one shared row to align on")
     a, b = src[picked], ref[picked]
     mean_a, mean_b = a.mean(axis=0), b.mean(axis=0)
-    u, _, vt = np.linalg.svd((a - mean_a).T @ (b - mean_b))
-    rotation = u @ vt
+    rotation, _ = orthogonal_procrustes(a - mean_a, b - mean_b)
     return (src - mean_a) @ rotation + mean_b

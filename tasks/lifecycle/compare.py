@@ -31,9 +31,6 @@ from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
 from entivec.tasks.evidence.align import align_to
 
-# Rows of the distance matrix computed at once in the neighbour search: bounds memory to CHUNK x n floats.
-_NEIGHBOUR_CHUNK = 1024
-
 
 @dataclass
 class ColumnComparison:
@@ -126,23 +123,17 @@ def procrustes_drift(newer: np.ndarray, older: np.ndarray) -> tuple[np.ndarray, 
 def nearest_neighbours(points: np.ndarray, k: int) -> np.ndarray:
     """(n, k) indices of each point's k nearest other points by Euclidean distance, nearest first.
 
-    Exact brute force in chunks of rows (memory CHUNK x n). Ties are broken by the lower index.
+    scikit-learn's exact brute-force search (``NearestNeighbors(algorithm="brute")``, which works in chunks of
+    bounded memory); asked without query points it leaves each point out of its own list.
     """
+    from sklearn.neighbors import NearestNeighbors
+
     x = np.asarray(points, dtype=np.float64)
     n = x.shape[0]
     if not 1 <= k <= n - 1:
         raise ValueError(f"k must be between 1 and n - 1 = {n - 1}, got {k}")
-    squared = np.sum(x**2, axis=1)
-    out = np.empty((n, k), dtype=np.int64)
-    for start in range(0, n, _NEIGHBOUR_CHUNK):
-        stop = min(start + _NEIGHBOUR_CHUNK, n)
-        d2 = squared[start:stop, None] + squared[None, :] - 2.0 * (x[start:stop] @ x.T)
-        np.maximum(d2, 0.0, out=d2)
-        d2[np.arange(stop - start), np.arange(start, stop)] = np.inf  # a point is not its own neighbour
-        # A stable sort on (distance, index) gives a deterministic order among ties.
-        order = np.argsort(d2, axis=1, kind="stable")[:, :k]
-        out[start:stop] = order
-    return out
+    search = NearestNeighbors(n_neighbors=k, algorithm="brute", metric="euclidean", n_jobs=1).fit(x)
+    return search.kneighbors(return_distance=False).astype(np.int64, copy=False)
 
 
 def neighbour_overlap(older: np.ndarray, newer: np.ndarray, k: int) -> tuple[np.ndarray, int]:

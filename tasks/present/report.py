@@ -31,10 +31,12 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
+from entivec.tasks.apply.outputs import write_text_atomically  # noqa: E402
 from entivec.tasks.lifecycle import audit, registry  # noqa: E402
 from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
 from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
 from entivec.tasks.lifecycle.gate import GateResult
+from entivec.tasks.lifecycle.lineage import gate_params, log_data_input
 from entivec.tasks.lifecycle.registry import run_file  # noqa: E402
 from entivec.tasks.lifecycle.track import (  # noqa: E402
     link_in_prefect,  # noqa: E402
@@ -202,7 +204,9 @@ def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bo
         for col, comp in result.comparisons.items():
             if np.isfinite(comp.drift):
                 metrics.append(Metric("drift_" + _METRIC_UNSAFE.sub("_", col), comp.drift, stamp, 0))
-        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)])
+        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)], params=gate_params(result.policy))
+        log_data_input(c, run_id, result.data_source or spec_path, {"sha256": result.data_fingerprint,
+                       "rows": result.rows}, result.name, "evaluation")
         project_home().mkdir(parents=True, exist_ok=True)
         with tempfile.TemporaryDirectory(prefix="gate-", dir=project_home()) as scratch:
             _write_gate_folder(result, Path(scratch), verdict=verdict, by=by, reason=reason, spec_path=spec_path)
@@ -381,8 +385,7 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
     number = str(mv.version)
     text = version_report_html(name, number)
     path = Path(out) if out else project_home() / "reports" / name / f"version-{number}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
+    write_text_atomically(path, text, "the report")  # all or nothing, mode per umask
     with tempfile.TemporaryDirectory(prefix="report-", dir=project_home()) as scratch:
         staged = Path(scratch) / VERSION_REPORT  # the artifact's name is fixed, whatever ``out`` is called
         staged.write_text(text, encoding="utf-8")
