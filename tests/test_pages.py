@@ -299,6 +299,7 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
     import entivec_test_vector_fixtures as vf
 
     from entivec.flows.lifecycle import diff_versions, write_diff_html
+    from entivec.tasks.present.maps import RARE_ROWS
     from entivec.tasks.present.report import publish_version_report
 
     store = vf.register_two_versions(entivec_home)  # v1 production, v2 staging
@@ -315,7 +316,7 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
         assert opened.errors == [], path.name
         opened.page.close()
     text = diff.read_text(encoding="utf-8")
-    assert "Top movers of 'color' (categories with 30+ training rows in both versions)" in text
+    assert f"Top movers of 'color' (categories with {RARE_ROWS}+ training rows in both versions)" in text
     assert f"new in version {version} (1): I1" in text  # clarity I1: rare in version 1, its own row in version 3
 
 

@@ -81,6 +81,7 @@ HEADER_WORDS = {
     "rmse": "RMSE", "mae": "MAE", "r2": "R²", "log_loss": "log loss", "roc_auc": "ROC AUC", "mse": "MSE",
     "relative_spread": "relative spread", "in_all_folds": "in every fold", "from_version": "from version",
     "to_version": "to version", "data_fingerprint": "data fingerprint", "state_note": "state note",
+    "noise": "own noise (relative)", "moved": "movement against own noise",
 }
 
 

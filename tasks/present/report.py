@@ -85,7 +85,13 @@ def drift_bars(comp: ColumnComparison, top: int = 30) -> bytes:
     """The largest drifts of categories with at least RARE_ROWS training rows in both versions."""
     movers = split_movers(comp.movers)[0].dropna(subset=["drift"]).head(top).iloc[::-1]
     fig, ax = plt.subplots(figsize=(6.5, max(2.0, 0.22 * len(movers) + 1.0)))
-    ax.barh(movers["category"].astype(str), movers["drift"], label="drift of a category")
+    if "moved" in movers.columns:  # the noise-aware comparison: movement beyond a category's own noise stands out
+        beyond = (movers["moved"] == "beyond noise").to_numpy()
+        ax.barh(movers["category"].astype(str), movers["drift"], color=np.where(beyond, "#1f4e79", "#a9c4dd"))
+        ax.barh([], [], color="#1f4e79", label="beyond its own noise")
+        ax.barh([], [], color="#a9c4dd", label="within its own noise or not measured")
+    else:
+        ax.barh(movers["category"].astype(str), movers["drift"], label="drift of a category")
     ax.axvline(comp.drift, color="black", linestyle=":", label=f"column drift {comp.drift:.3f}")
     ax.set(title=f"'{comp.column}': largest drifts ({len(movers)}, each seen in {RARE_ROWS}+ rows in both)",
            xlabel="aligned distance / older spread")
@@ -112,11 +118,14 @@ def movers_sections(column: str, comp: ColumnComparison, top: int) -> list[str]:
     """Top movers among categories seen often enough in both versions; the rare ones listed apart."""
     common, rare = split_movers(comp.movers)
     parts = [f"<h3>Top movers of '{esc(column)}' (categories with {RARE_ROWS}+ training rows in both versions)</h3>",
-             table(common.head(top))]
+             table(common.drop(columns=["rare"], errors="ignore").head(top))]
+    if "moved" in comp.movers.columns:
+        parts.append('<p class="muted">Movement is "beyond noise" when a category\'s drift exceeds what its own '
+                     "uncertainty (the spread of its cross-fitted vectors) explains.</p>")
     if len(rare):
         parts.append(f'<p class="muted">{len(rare)} rare categories (fewer than {RARE_ROWS} training rows in either '
                      "version) are listed apart: their movement is mostly noise.</p>")
-        parts.append(table(rare.head(top)))
+        parts.append(table(rare.drop(columns=["rare"], errors="ignore").head(top)))
     return parts
 
 
