@@ -303,9 +303,22 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
     from entivec.tasks.present.report import publish_version_report
 
     store = vf.register_two_versions(entivec_home)  # v1 production, v2 staging
-    version, _ = _third_version(entivec_home, store.frame, monkeypatch)
+    version, vs = _third_version(entivec_home, store.frame, monkeypatch)
+
+    # a seed-stability file as train runs log it; figures here: version 1 against version 3 (compare module)
+    from entivec.tasks.lifecycle import registry
+    from entivec.tasks.lifecycle.compare import compare_vector_sets
+
+    figures = {col: {"seed_neighbour_overlap": c.neighbour_overlap, "seed_chance_overlap": c.chance_overlap,
+                     "seed_aligned_distance": c.drift, "seed_categories": float(len(c.shared))}
+               for col, c in compare_vector_sets(store.v1, vs).items()}
+    (tmp_path / "evidence").mkdir()
+    (tmp_path / "evidence" / "seed_stability.json").write_text(json.dumps(figures))
+    run_id = registry.resolve(vf.MODEL, version).run_id
+    registry.client().log_artifact(run_id, str(tmp_path / "evidence" / "seed_stability.json"), "evidence")
 
     report = publish_version_report(vf.MODEL, version, tmp_path / "version.html").path
+    assert "aligned distance between seeds" in report.read_text(encoding="utf-8")
     diff = write_diff_html(diff_versions(vf.MODEL, "1", version), tmp_path / "diff.html")
     for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS))):
         opened = open_page(browser, path, width=width)

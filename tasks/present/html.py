@@ -82,6 +82,8 @@ HEADER_WORDS = {
     "relative_spread": "relative spread", "in_all_folds": "in every fold", "from_version": "from version",
     "to_version": "to version", "data_fingerprint": "data fingerprint", "state_note": "state note",
     "noise": "own noise (relative)", "moved": "movement against own noise",
+    "seed_neighbour_overlap": "neighbour overlap between seeds", "seed_chance_overlap": "overlap by chance",
+    "seed_aligned_distance": "aligned distance between seeds", "seed_categories": "categories measured",
 }
 
 

@@ -288,6 +288,14 @@ def version_report_html(name: str, version: str) -> str:
          "norm median": float(np.median(np.linalg.norm(vs.vectors[col][1:], axis=1))) if vs.vocabularies[col].size > 1
          else float("nan")}
         for col in vs.columns]))]
+    stability = _text_artifact(mv.run_id, "evidence/seed_stability.json")
+    if stability:  # written by train runs that measure it: what a new seed alone changes, per column
+        figures = json.loads(stability)
+        body += ["<h2>Seed stability</h2>",
+                 '<p class="muted">Two networks trained on the same rows with different seeds: how much of a change '
+                 "between versions a reseed alone would explain. Aligned distance is read like the drift of "
+                 "<code>entivec diff</code>.</p>",
+                 table(pd.DataFrame([{"column": col, **values} for col, values in figures.items()]))]
     body += _vector_sections(name, number, vs)
     summary = _text_artifact(mv.run_id, "summary.md")
     if summary:
