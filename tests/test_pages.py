@@ -210,6 +210,24 @@ def test_review_page_in_a_browser(entivec_home, browser, monkeypatch, tmp_path):
     assert OpenedPage(page).overflowing_tables() == []
     page.close()
 
+    # as MLflow's artifact view shows an HTML artifact: from a blob URL in an iframe sandboxed to scripts only
+    framed = browser.new_page()
+    errors = []
+    framed.on("console", lambda msg: errors.append(msg.text) if msg.type == "error" else None)
+    framed.set_content('<iframe id="view" sandbox="allow-scripts" width="1200" height="900"></iframe>')
+    framed.evaluate("html => { document.getElementById('view').src = "
+                    "URL.createObjectURL(new Blob([html], {type: 'text/html'})); }",
+                    Path(published.path).read_text(encoding="utf-8"))
+    framed.wait_for_function("document.getElementById('view').contentWindow.length !== undefined")
+    inner = framed.frame_locator("#view")
+    inner.locator("#column").select_option(label="color")
+    inner.locator("#search").fill("E")
+    inner.locator("#search").press("Enter")
+    inner.locator("#neighbours tbody tr").first.wait_for()
+    assert inner.locator("#neighbours tbody tr").count() == k
+    assert errors == []
+    framed.close()
+
 
 @pytest.mark.integration
 def test_fifty_thousand_categories_load_and_stay_usable(browser, tmp_path):
