@@ -244,7 +244,7 @@ def _write_gate_folder(result: GateResult, folder: Path, *, verdict: str, by: st
 # --- the version report -----------------------------------------------------------------------------------------
 
 
-def _gate_runs(name: str, version: str) -> list:
+def gate_runs(name: str, version: str) -> list:
     c = registry.client()
     experiment = c.get_experiment_by_name(f"entivec/{name}")
     if experiment is None:
@@ -257,7 +257,7 @@ def _gate_runs(name: str, version: str) -> list:
     )
 
 
-def _text_artifact(run_id: str, path: str) -> str | None:
+def text_artifact(run_id: str, path: str) -> str | None:
     local = run_file(run_id, path)
     return local.read_text(encoding="utf-8") if local is not None and local.is_file() else None
 
@@ -288,7 +288,7 @@ def version_report_html(name: str, version: str) -> str:
          "norm median": float(np.median(np.linalg.norm(vs.vectors[col][1:], axis=1))) if vs.vocabularies[col].size > 1
          else float("nan")}
         for col in vs.columns]))]
-    stability = _text_artifact(mv.run_id, "evidence/seed_stability.json")
+    stability = text_artifact(mv.run_id, "evidence/seed_stability.json")
     if stability:  # written by train runs that measure it: what a new seed alone changes, per column
         figures = json.loads(stability)
         body += ["<h2>Seed stability</h2>",
@@ -297,10 +297,10 @@ def version_report_html(name: str, version: str) -> str:
                  "<code>entivec diff</code>.</p>",
                  table(pd.DataFrame([{"column": col, **values} for col, values in figures.items()]))]
     body += _vector_sections(name, number, vs)
-    summary = _text_artifact(mv.run_id, "summary.md")
+    summary = text_artifact(mv.run_id, "summary.md")
     if summary:
         body += ["<h2>Train run summary</h2>", markdown(summary)]
-    comparison = _text_artifact(mv.run_id, "evidence/comparison.csv")
+    comparison = text_artifact(mv.run_id, "evidence/comparison.csv")
     if comparison:
         body += ["<h2>Downstream evidence of the train run</h2>", table(pd.read_csv(io.StringIO(comparison)))]
     try:
@@ -313,7 +313,7 @@ def version_report_html(name: str, version: str) -> str:
             local = run_file(mv.run_id, path)
             if local is not None:
                 body.append(image(local.read_bytes(), path))
-    for gate_run in _gate_runs(name, number):
+    for gate_run in gate_runs(name, number):
         body += _gate_run_sections(gate_run)
     entries = [e for e in audit.read_history(name) if number in (e.from_version, e.to_version)]
     body += ["<h2>Alias moves involving this version</h2>",
@@ -356,7 +356,7 @@ def _gate_run_sections(gate_run) -> list[str]:
     run_id = gate_run.info.run_id
     tags = gate_run.data.tags
     when = datetime.fromtimestamp(gate_run.info.start_time / 1000, UTC).strftime("%Y-%m-%d %H:%M UTC")
-    evidence = _text_artifact(run_id, f"{GATE_FOLDER}/evidence.json")
+    evidence = text_artifact(run_id, f"{GATE_FOLDER}/evidence.json")
     if evidence is None:
         return []
     data = json.loads(evidence)
