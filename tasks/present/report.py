@@ -168,8 +168,10 @@ def gate_sections(result: GateResult, plots: dict[str, bytes], *, heading: str =
             parts.append(image(data, name))
     if result.comparisons:
         parts.append("<h3>Stability against production</h3>")
-        rows = [comp.summary(top=0) for comp in result.comparisons.values()]
-        parts.append(table(pd.DataFrame(rows).drop(columns=["top_movers"])))
+        # figures only: the movers lists get tables of their own below
+        rows = [{k: v for k, v in comp.summary(top=0).items() if not isinstance(v, (list, dict))}
+                for comp in result.comparisons.values()]
+        parts.append(table(pd.DataFrame(rows)))
         for col, comp in result.comparisons.items():
             parts += movers_sections(col, comp, int(result.policy.get("top_movers", 10)))
             for name in (_plot_name("aligned", col), _plot_name("drift", col)):
