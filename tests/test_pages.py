@@ -338,7 +338,8 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
     report = publish_version_report(vf.MODEL, version, tmp_path / "version.html").path
     assert "aligned distance between seeds" in report.read_text(encoding="utf-8")
     diff = write_diff_html(diff_versions(vf.MODEL, "1", version), tmp_path / "diff.html")
-    for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS))):
+    # diff: an aligned map and a drift chart per column, and a map of clarity, whose I1 is new in version 3
+    for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS) + 1)):
         opened = open_page(browser, path, width=width)
         widths = opened.image_widths()
         assert len(widths) >= images and all(w > 0 for w in widths), (path.name, widths)  # every image decodes

@@ -434,6 +434,10 @@ def diff_html(
     notes: list[str],
 ) -> str:
     """The comparison of two versions as one self-contained page."""
+    try:  # the newer vector set, to show where its new categories lie (versions are cached locally)
+        newer_set = registry.load_version(name, newer).vector_set
+    except (registry.RegistryError, MlflowException, OSError):
+        newer_set = None
     body = [f"<p>From version {esc(older)} (reference) to version {esc(newer)} (aligned onto the reference).</p>"]
     body += [f'<p class="muted">{esc(n)}</p>' for n in notes]
     body += ["<h2>Per column</h2>", table(summary)]
@@ -452,4 +456,7 @@ def diff_html(
         if len(comp.shared) >= 2:
             body.append(image(aligned_map(comp, f"v{older}", f"v{newer}"), f"aligned map of {col}"))
             body.append(image(drift_bars(comp), f"drift of {col}"))
+        if comp.added and newer_set is not None and col in newer_set.vectors:  # where the new categories landed
+            body.append(image(version_map(newer_set.vocabularies[col], newer_set.vectors[col], new=set(comp.added),
+                                          against=f"version {older}"), f"new categories of {col}"))
     return page(f"{name}: version {older} → version {newer}", body)
