@@ -136,7 +136,7 @@ def promote(
     raw, files = ingest(spec, spec_file)
     fingerprint = data_fingerprint(raw, files)["sha256"]
     cleaned = clean(raw, spec, files)
-    train_rows, test_rows = split(cleaned.frame, spec.split)
+    train_rows, test_rows = split(cleaned.frame, spec.split, spec.id_name)
     result = gate.run_gate_task(
         spec=spec, candidate=candidate, production=production, train_rows=train_rows, test_rows=test_rows,
         data_fingerprint=fingerprint,
@@ -284,7 +284,7 @@ def _judge_pair(
     spec, spec_file = spec_for(name, newer, spec_path)
     raw, files = read_source(spec, spec_file)
     cleaned = validate_and_clean(raw, spec, files)
-    train_rows, test_rows = split_rows(cleaned.frame, spec.split)
+    train_rows, test_rows = split_rows(cleaned.frame, spec.split, spec.id_name)
     labels = {f"v{older.version}": older, f"v{newer.version}": newer}
     rows = unseen_rows(test_rows, spec, labels, data_fingerprint(raw, files)["sha256"])
     if len(rows.frame) < 2:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 import tempfile
 from dataclasses import dataclass
@@ -11,10 +12,13 @@ from prefect import flow, get_run_logger, task
 from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
+from entivec.schemas.vector_set import column_file_stem
 from entivec.settings import project_home
+from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
+from entivec.tasks.evidence.stability import seed_stability
 from entivec.tasks.ingest.clean import clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint as fingerprint_of
 from entivec.tasks.ingest.read import ingest
@@ -29,6 +33,8 @@ from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import predict
 from entivec.tasks.train.trainer import train_vectors
 from entivec.tasks.train.vocabulary import build_vocabularies_task
+
+RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold networks use seed + 1 + fold)
 
 
 @dataclass
@@ -152,7 +158,7 @@ def train(
                 stopped = outcomes.record_stop_task(spec, drift_report, fingerprint["sha256"])
                 raise drift.DriftStop(drift_report, stopped)
             notes.append(f"incremental: drift against production version {reference.version} passed")
-    train_rows, test_rows = split(cleaned.frame, spec.split)
+    train_rows, test_rows = split(cleaned.frame, spec.split, spec.id_name)
 
     start = earlier_version(spec.name, vocabulary_from) if vocabulary_from else reference
     previous = start.vector_set.vocabularies if start is not None else None
@@ -174,20 +180,39 @@ def train(
         train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
         training=spec.training, task=spec.target.task, init_vectors=init_vectors,
     )
+    stability = {}
+    if spec.evaluation.seed_check:  # the same rows and start, another seed: what a reseed alone changes
+        reseeded = train_vectors.with_options(task_run_name="train-vectors-reseeded")(
+            train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
+            training=spec.training.model_copy(update={"seed": spec.training.seed + RESEED, "progress": False}),
+            task=spec.target.task, init_vectors=init_vectors,
+        )
+        stability = seed_stability(vocabularies, result.vectors, reseeded.vectors)
+        del reseeded
     network_pred = predict(result.model, test_inputs, spec.target.task)
     if spec.target.task == "regression":
         network_pred = targets.inverse(network_pred, spec.target.transform)
     network_metrics = task_metrics(spec.target.task, y_test, network_pred)
 
-    rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
-    subset = train_inputs.take(rows)
+    # Bounded evidence: the fold networks train on a seeded sample of at most evaluation.max_fold_rows rows, the
+    # downstream models on a seeded sample of that sample (max_train_rows) and are scored on a seeded sample of
+    # the test rows (max_test_rows); only the downstream rows' out-of-fold vectors are kept.
+    ev = spec.evaluation
+    fold_rows = capped_rows(len(train_rows), ev.max_fold_rows, ev.seed)
+    picked = capped_rows(len(fold_rows), ev.max_train_rows, ev.seed)
+    rows = fold_rows[picked]
+    tested = capped_rows(len(test_rows), ev.max_test_rows, ev.seed)
     # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
-    oof = cross_fit_vectors(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
-    in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
-    on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
+    spread = FoldSpread()
+    oof = cross_fit_vectors(train_inputs.take(fold_rows), y_train[fold_rows], spec, cardinalities, sizes,
+                            result.vectors, spread=spread, keep=picked)
+    confidence = confidence_tables(spread, vocabularies, result.vectors)
+    in_sample = vectors_for_ids(train_inputs.cat_ids[rows], result.vectors, spec.embed_names)
+    on_test = vectors_for_ids(test_inputs.cat_ids[tested], result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
-        train_rows.iloc[rows], test_rows, spec,
-        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred,
+        train_rows.iloc[rows], test_rows.iloc[tested], spec,
+        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred[tested],
+        n_available=len(train_rows), n_test_available=len(test_rows),
     )
 
     project_home().mkdir(parents=True, exist_ok=True)
@@ -196,7 +221,7 @@ def train(
         bundle = BundleInputs(
             spec, spec_text, fingerprint, cleaned.ledger, cleaned.quarantine, vocabularies, encoder,
             result, evidence, network_metrics, y_test, network_pred,
-            profile=profile.data_profile_task(raw, train_rows, spec),
+            profile=profile.data_profile_task(raw, train_rows, spec), confidence=confidence,
         )
         vector_folder = write_bundle_task(bundle, workdir)
         plots.write_run_plots(bundle, workdir)
@@ -209,6 +234,10 @@ def train(
             for key, value in row.items():
                 if key in network_metrics:
                     metrics[f"{row['model']}_{row['features']}_{key}"] = value
+        for col, figures in stability.items():  # MLflow metrics per column, e.g. seed_neighbour_overlap.dest
+            metrics.update({f"{key}.{column_file_stem(col)}": value for key, value in figures.items()})
+        if stability:
+            (workdir / "evidence" / "seed_stability.json").write_text(json.dumps(stability, indent=1, default=float))
         if drift_report is not None:
             metrics["drift_max_psi"] = drift_report.largest("psi")
             metrics["drift_max_new_category_share"] = drift_report.largest("new_category_share")

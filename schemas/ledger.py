@@ -48,6 +48,23 @@ class Ledger:
                 f"{rows_quarantined} quarantined (ledger says {self.rows_quarantined} quarantined)"
             )
 
+    def add(self, part: Ledger) -> None:
+        """Add the ledger of one more batch of the same table: rows summed, each step's rows summed under the step
+        and action it was first recorded with (its detail, with its examples, is the first batch's)."""
+        self.rows_in += part.rows_in
+        self.rows_quarantined += part.rows_quarantined
+        for name in part.files:
+            if name not in self.files:
+                self.files.append(name)
+        index = {(s.step, s.action): s for s in self.steps}
+        for step in part.steps:
+            known = index.get((step.step, step.action))
+            if known is None:
+                known = LedgerStep(step.step, step.action, 0, step.detail)
+                self.steps.append(known)
+                index[(step.step, step.action)] = known
+            known.rows += step.rows
+
     def to_dict(self) -> dict:
         return {
             "rows_in": self.rows_in,

@@ -22,9 +22,11 @@ CHECK_RANGE = "range"
 CHECK_BINARY = "binary"
 CHECK_FINITE = "finite"
 CHECK_TIME = "time"
+CHECK_INTEGER = "integer"
+CHECK_DOMAIN = "domain"
 
 # Order in which the reasons of one row are listed: type problems first, then values, then the table-wide one.
-REASON_ORDER = ("coerce", "null", "binary", "range", "infinite", "time", "duplicate_id")
+REASON_ORDER = ("coerce", "null", "binary", "range", "integer", "domain", "infinite", "time", "duplicate_id")
 
 
 # --- parsers: what a cell may look like before it is typed -----------------------------------------------------
@@ -96,7 +98,8 @@ def null_handled_by_rules(spec: Spec) -> set[str]:
 
 def required_columns(spec: Spec) -> dict[str, str]:
     """Every column the data must have, with the spec key that asks for it."""
-    keys: dict[str, str] = {spec.id_column: "id_column", spec.target.column: "target.column"}
+    keys: dict[str, str] = {spec.id_column: "id_column"} if spec.id_column is not None else {}
+    keys[spec.target.column] = "target.column"
     for role, cols in (
         ("columns.embed", spec.columns.embed),
         ("columns.onehot", spec.columns.onehot),
@@ -111,7 +114,7 @@ def required_columns(spec: Spec) -> dict[str, str]:
 
 def category_columns(spec: Spec) -> list[str]:
     """Columns read as text, never as numbers ("00123" stays "00123"): the id and the categorical features."""
-    return [spec.id_column, *spec.embed_names, *spec.onehot_names]
+    return [spec.id_name, *spec.embed_names, *spec.onehot_names]
 
 
 # --- the schema -----------------------------------------------------------------------------------------------
@@ -133,23 +136,45 @@ def _declared_range(low: float | None, high: float | None) -> pa.Check:
     return pa.Check(inside, name=CHECK_RANGE)
 
 
+def _whole_and_not_negative() -> pa.Check:
+    # A count: 0, 1, 2, ... (a whole number stored as 3.0 is still a whole number).
+    def whole(s: pd.Series) -> pd.Series:
+        values = s.to_numpy(dtype="float64")
+        with np.errstate(invalid="ignore"):
+            return pd.Series((values >= 0) & (np.floor(values) == values), index=s.index)
+
+    return pa.Check(whole, name=CHECK_INTEGER)
+
+
+# Where each numeric input transform is defined: log needs x > 0, log1p needs x > -1.
+TRANSFORM_LOWER_BOUND = {"log": 0.0, "log1p": -1.0}
+
+
+def _in_transform_domain(transform: str) -> pa.Check:
+    bound = TRANSFORM_LOWER_BOUND[transform]
+    return pa.Check(lambda s: s > bound, name=CHECK_DOMAIN)
+
+
 def _parses_as_time() -> pa.Check:
     return pa.Check(lambda s: parse_times(s).notna(), name=CHECK_TIME)
 
 
-def build_schema(spec: Spec) -> pa.DataFrameSchema:
+def build_schema(spec: Spec, unique_ids: bool = True) -> pa.DataFrameSchema:
     """The pandera schema of the spec's table.
 
     - id column: text, never missing, unique (every row sharing an id fails, see ``report_duplicates="all"``).
     - embed / onehot columns: text (trimmed, blank = missing); missing allowed per their ``nullable``.
-    - numeric columns: coerced to float, finite, inside their declared ``min``/``max`` (inclusive);
-      missing allowed per their ``nullable``.
+    - numeric columns: coerced to float, finite, inside their declared ``min``/``max`` (inclusive), whole and
+      not negative when declared ``integer``, inside the domain of their ``transform``; missing allowed per their
+      ``nullable`` or when they are imputed (``impute: median``).
     - target: coerced to float and finite; a binary target must be 0 or 1 (the words of BINARY_LABELS are
       read as 1/0 first). Never missing.
     - time column of the split: present, never missing, readable as a time (see ``parse_times``).
 
     A column that a cleaning rule deals with (see ``null_handled_by_rules``) may be missing at this stage:
     the rule, and after it the model-readiness check, decide. Columns the spec does not name are allowed.
+    ``unique_ids=False`` leaves id uniqueness out, for a table checked batch by batch whose duplicate ids are
+    found across all batches by other means.
     """
     deferred = null_handled_by_rules(spec)
     time_column = spec.split.time_column
@@ -157,13 +182,13 @@ def build_schema(spec: Spec) -> pa.DataFrameSchema:
     extra: dict[str, list[pa.Check]] = {time_column: [_parses_as_time()]} if time_column else {}
     text = [pa.Parser(category_strings)]
     columns: dict[str, pa.Column] = {
-        spec.id_column: pa.Column(
+        spec.id_name: pa.Column(
             pd.StringDtype(),
             parsers=text,
-            checks=extra.get(spec.id_column, []),
+            checks=extra.get(spec.id_name, []),
             coerce=True,
             nullable=False,
-            unique=True,
+            unique=unique_ids,
             report_duplicates="all",
         )
     }
@@ -179,12 +204,16 @@ def build_schema(spec: Spec) -> pa.DataFrameSchema:
         checks = [_finite(), *extra.get(col.name, [])]
         if col.min is not None or col.max is not None:
             checks.append(_declared_range(col.min, col.max))
+        if col.integer:
+            checks.append(_whole_and_not_negative())
+        if col.transform != "none":
+            checks.append(_in_transform_domain(col.transform))
         columns[col.name] = pa.Column(
             "float64",
             parsers=[pa.Parser(number_ready)],
             checks=checks,
             coerce=True,
-            nullable=col.nullable or col.name in deferred,
+            nullable=col.nullable or col.impute != "none" or col.name in deferred,
         )
     target = spec.target
     target_checks = [_finite(), *extra.get(target.column, [])]
@@ -218,6 +247,10 @@ def failure_reason(column: str | None, check: str) -> str:
         return f"infinite:{column}"
     if check == CHECK_TIME:
         return f"time:{column}"
+    if check == CHECK_INTEGER:
+        return f"integer:{column}"
+    if check == CHECK_DOMAIN:
+        return f"domain:{column}"
     # Never drop a failure for want of a name: an unforeseen check keeps its own.
     return f"check:{check}:{column}"
 

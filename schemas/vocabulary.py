@@ -60,9 +60,19 @@ class Vocabulary:
         cls, column: str, values: pd.Series, min_count: int = 1, previous: Vocabulary | None = None
     ) -> Vocabulary:
         strings = category_strings(values)
-        observed = strings.value_counts(dropna=True)
+        return cls.from_counts(column, strings.value_counts(dropna=True), len(strings), int(strings.isna().sum()),
+                               min_count, previous)
+
+    @classmethod
+    def from_counts(
+        cls, column: str, observed: pd.Series, rows: int, missing: int, min_count: int = 1,
+        previous: Vocabulary | None = None,
+    ) -> Vocabulary:
+        """The vocabulary of ``rows`` values whose categories (spelled by ``category_strings``) were counted as
+        ``observed`` (category -> count; counts of several batches may be summed first) and ``missing`` of which
+        were missing. Gives what :meth:`build` gives on the same values."""
+        observed = observed.astype(np.int64)
         observed = observed.sort_index(kind="stable").sort_values(ascending=False, kind="stable")
-        missing = int(strings.isna().sum())
         if previous is not None:
             if previous.column != column:
                 raise ValueError(f"previous vocabulary is of {previous.column!r}, not {column!r}")
@@ -77,7 +87,7 @@ class Vocabulary:
             categories = [UNKNOWN, *kept.index.tolist()]
             counts = [0, *kept.astype(int).tolist()]
         counted = sum(counts[1:])
-        counts[0] = int(len(strings) - counted)  # rows that will map to unknown: rare or missing
+        counts[0] = int(rows - counted)  # rows that will map to unknown: rare or missing
         return cls(column, categories, counts, min_count=min_count, unknown_count=missing)
 
     def encode(self, values: pd.Series) -> np.ndarray:

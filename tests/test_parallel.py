@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 from prefect import flow
 
-pytestmark = pytest.mark.integration
+# Tests given the Prefect test server are marked integration by tests/conftest.py; the others are unit tests.
 
 ROWS = 3_000
 # Flows defined here travel to Dask workers by value: the workers cannot import this test module by name.

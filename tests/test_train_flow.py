@@ -68,12 +68,23 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert set(vocab.categories[1:]) == {"I1", "SI2", "SI1", "VS2", "VS1", "VVS2", "VVS1", "IF"}
     assert loaded.vector_set.vectors["clarity"].shape == (9, 3)
     assert np.isfinite(loaded.vector_set.vectors["color"]).all()
+    # Per-category confidence from the two fold networks travels with the version, one row per vocabulary id,
+    # with the vocabulary's own counts (the ggplot2 data: every clarity grade is seen in both folds' rows).
+    confidence = loaded.vector_set.confidence["clarity"]
+    assert list(confidence["category"]) == list(vocab.categories)
+    assert list(confidence["count"]) == list(vocab.counts)
+    known = confidence[confidence["id"] > 0]
+    assert known["in_all_folds"].all() and (known["spread"] > 0).all() and known["relative_spread"].notna().all()
 
     client = registry.client()
     run = client.get_run(outcome.run_id)
     assert run.info.status == "FINISHED"
     assert run.data.tags["entivec.data_fingerprint"]
     assert "epoch_valid_loss" in run.data.metrics and "network_rmse" in run.data.metrics
+    # Seed stability of every embedded column, logged with the run (a second network, another seed, same rows).
+    for col in ("clarity", "color"):
+        assert 0.0 <= run.data.metrics[f"seed_neighbour_overlap.{col}"] <= 1.0
+        assert run.data.metrics[f"seed_aligned_distance.{col}"] >= 0.0
     artifacts = {a.path for a in client.list_artifacts(outcome.run_id)}
     assert {"spec.yaml", "data", "vector_set", "network", "evidence", "plots", "summary.md"} <= artifacts
     plots = {a.path for a in client.list_artifacts(outcome.run_id, "plots")}

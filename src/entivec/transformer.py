@@ -16,11 +16,11 @@ from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, v
 from entivec.tasks.apply.lookup import (
     DEFAULT_UNKNOWN,
     CategoryTypeError,
-    ColumnLookup,
     category_type_problem,
     check_unknown_rule,
     column_report,
     pandas_kind,
+    prepare,
 )
 
 # scikit-learn's estimator checks that feed unnamed numeric arrays (rows of floats or integer codes). The encoder
@@ -188,7 +188,7 @@ class VectorEncoder(TransformerMixin, BaseEstimator):
         self.columns_ = columns
         self.vocabularies_ = {c: vector_set.vocabularies[c] for c in columns}
         self.vectors_ = {c: vector_set.vectors[c] for c in columns}
-        self._lookups = {c: ColumnLookup(c, self.vocabularies_[c], self.vectors_[c], self.unknown) for c in columns}
+        self._lookups = prepare(vector_set, columns, self.unknown)  # the version's shrink rule included
         self.unknown_share_ = {c: report["unknown_share"] for c, report in self._reports(frame).items()}
         return self
 

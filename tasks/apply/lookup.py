@@ -16,6 +16,9 @@ missing (null, NaN, empty or blank text):
 - ``"error"``: refuse the input with :class:`UnknownCategoryError`, naming the column, how many values
   and a few of them. Missing values count as unknown here too.
 
+The shrink rule (``tasks/apply/shrink.py``, off by default) is applied here, once per column, before the
+unknown-category rule, so all three consumers apply it identically.
+
 Category column types (:func:`category_type_problem`): text always fits; integer, float or boolean input
 fits only when the vocabulary holds categories spelled that way (an integer column meeting a vocabulary of
 text would silently turn every row unknown); nested, binary, temporal and decimal columns never fit.
@@ -42,6 +45,7 @@ import torch
 
 from entivec.schemas.vector_set import VectorSet, component_names
 from entivec.schemas.vocabulary import UNKNOWN_ID, Vocabulary, category_strings
+from entivec.tasks.apply.shrink import shrunk_matrix
 
 UNKNOWN_RULES = ("unknown_row", "zeros", "mean", "error")
 DEFAULT_UNKNOWN = "unknown_row"
@@ -180,11 +184,12 @@ class ColumnLookup:
     matrix, component-major.
     """
 
-    def __init__(self, column: str, vocabulary: Vocabulary, matrix: np.ndarray, unknown: str = DEFAULT_UNKNOWN):
+    def __init__(self, column: str, vocabulary: Vocabulary, matrix: np.ndarray, unknown: str = DEFAULT_UNKNOWN,
+                 *, confidence: pd.DataFrame | None = None, shrink: dict | None = None):
         self.column = column
         self.vocabulary = vocabulary
         self.unknown = check_unknown_rule(unknown)
-        self.table = rule_matrix(vocabulary, matrix, unknown)
+        self.table = rule_matrix(vocabulary, shrunk_matrix(vocabulary, matrix, confidence, shrink), unknown)
         self.dimension = int(self.table.shape[1])
         self.names = component_names(column, self.dimension)
         # component-major copy: gathering along axis 1 writes each component contiguously (pandas' and
@@ -463,4 +468,9 @@ def prepare(
 ) -> dict[str, ColumnLookup]:
     """A lookup per column (default: every column of the vector set) under one unknown-category rule."""
     chosen = vector_set.columns if columns is None else list(columns)
-    return {c: ColumnLookup(c, vector_set.vocabularies[c], vector_set.vectors[c], unknown) for c in chosen}
+    shrink = vector_set.metadata.get("shrink")  # the version's own shrink rule, as trained
+    return {
+        c: ColumnLookup(c, vector_set.vocabularies[c], vector_set.vectors[c], unknown,
+                        confidence=vector_set.confidence.get(c), shrink=shrink)
+        for c in chosen
+    }

@@ -49,10 +49,13 @@ from entivec.schemas.tables import (
 )
 from entivec.schemas.vocabulary import category_strings
 from entivec.settings import project_home
+from entivec.tasks.ingest.notes import imputed, whitespace_merges, with_row_ids
 from entivec.tasks.ingest.read import (
     BOOKKEEPING,
     EXAMPLES,
     QUARANTINE_STEM,
+    RAGGED,
+    RAW_LINE,
     REASONS,
     SOURCE_FILE,
     SOURCE_ROW,
@@ -144,20 +147,35 @@ _DETAIL = {
     "range": "outside the column's declared min/max (inclusive)",
     "infinite": "infinite value",
     "time": "cannot be read as a time",
+    "integer": "not a whole number >= 0, but the column is declared a count (integer: true)",
+    "domain": "outside the domain of the column's transform (log needs > 0, log1p needs > -1)",
     "duplicate_id": "id shared with another row: every row of a shared id is quarantined",
 }
 
 
-def _validate(raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections) -> pd.DataFrame:
-    """Validate lazily with the spec's pandera schema; return the typed rows that pass (index = raw position)."""
-    schema = build_schema(spec)
+def _validate(
+    raw: pd.DataFrame, spec: Spec, ledger: Ledger, rejected: _Rejections, skip: np.ndarray | None = None,
+    duplicates: np.ndarray | None = None,
+) -> pd.DataFrame:
+    """Validate lazily with the spec's pandera schema; return the typed rows that pass (index = raw position).
+
+    Rows at the positions ``skip`` (already quarantined) are left out. With ``duplicates`` (positions of rows
+    whose id another row of the whole table shares, found outside this frame) the schema's own uniqueness
+    check is replaced by that list."""
+    schema = build_schema(spec, unique_ids=duplicates is None)
     names = list(schema.columns)
-    work = raw[[*names, *BOOKKEEPING]].copy()
+    work = raw[[*names, SOURCE_FILE, SOURCE_ROW]]
+    work = (work.drop(index=raw.index[skip]) if skip is not None and len(skip) else work).copy()
+    found: list[pd.DataFrame] = []
+    if duplicates is not None and len(duplicates):
+        found.append(pd.DataFrame({"row": np.asarray(duplicates, dtype=np.int64), "reason": "duplicate_id"}))
     try:
-        return schema.validate(work, lazy=True)
+        typed = schema.validate(work, lazy=True)
+        if not found:
+            return typed
+        cases = pd.DataFrame({"index": pd.Series([], dtype=float), "column": [], "check": [], "failure_case": []})
     except pa.errors.SchemaErrors as exc:
         cases = exc.failure_cases
-    found: list[pd.DataFrame] = []
     coerce = cases[cases["check"].astype(str).str.startswith("coerce_dtype") & cases["index"].notna()]
     if len(coerce):
         # A column with values that are not numbers was checked uncoerced, so its other results mean nothing.
@@ -326,7 +344,8 @@ def _model_ready(
     A categorical feature may be missing (it maps to the unknown id) unless the spec declares it not nullable.
     """
     strict_text = [c.name for c in (*spec.columns.embed, *spec.columns.onehot) if not c.nullable]
-    needed = [*strict_text, *spec.numeric_names, spec.target.column]
+    numeric = [c.name for c in spec.columns.numeric if c.impute == "none"]
+    needed = [*strict_text, *numeric, spec.target.column]
     if spec.split.method == "time" and spec.split.time_column and spec.split.time_column not in needed:
         needed.append(spec.split.time_column)
     failing = np.zeros(len(frame), dtype=bool)
@@ -343,20 +362,46 @@ def _model_ready(
     return frame[~failing]
 
 
-def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = None) -> CleanResult:
+def _ragged(raw: pd.DataFrame, ledger: Ledger, rejected: _Rejections) -> np.ndarray:
+    """Positions of CSV lines with the wrong number of fields (see csvfile.csv_batches), quarantined here."""
+    if RAW_LINE not in raw.columns:
+        return np.zeros(0, dtype=np.int64)
+    positions = np.flatnonzero(raw[RAW_LINE].notna().to_numpy())
+    if len(positions):
+        ledger.record(
+            RAGGED, "quarantine", len(positions),
+            f"a line with too few or too many fields (RFC 4180: every line has the header's field count); the "
+            f"line is kept in {RAW_LINE}; {examples(raw, positions)}",
+        )
+        rejected.add(positions, RAGGED)
+        ledger.rows_quarantined += len(positions)
+    return positions
+
+
+def validate_and_clean(
+    raw: pd.DataFrame, spec: Spec, files: list[str] | None = None, *, duplicates: np.ndarray | None = None,
+    first_row_id: int = 1, allow_empty: bool = False,
+) -> CleanResult:
     """Validate, apply the spec's rules in order, and check model-readiness; every row is used or quarantined.
 
     Raises InputError when a required column is missing or when no row survives (the exception then carries
     the quarantine and the ledger), SpecError when a rule cannot apply to its column, and LedgerMismatch if
     the counts do not add up.
+
+    For one batch of a streamed table: ``duplicates`` are the positions (in this batch) of rows whose id is
+    shared anywhere in the table, ``first_row_id`` numbers the rows when the spec has no id column, and
+    ``allow_empty`` lets a batch lose every row (the stream checks the whole table at its end).
     """
     check_spec_fits(spec)
     raw = with_bookkeeping(raw)
     files = list(files) if files is not None else [str(f) for f in pd.unique(raw[SOURCE_FILE])]
-    _require_columns(raw, spec, files)
     ledger = Ledger(rows_in=len(raw), files=files)
+    raw = with_row_ids(raw, spec, ledger, first=first_row_id)
+    _require_columns(raw, spec, files)
     rejected = _Rejections()
-    typed = _validate(raw, spec, ledger, rejected)
+    ragged = _ragged(raw, ledger, rejected)
+    whitespace_merges(raw, spec, ledger, ragged)
+    typed = _validate(raw, spec, ledger, rejected, skip=ragged, duplicates=duplicates)
     for i, rule in enumerate(spec.rules):
         outcome = RULES[rule.kind](typed, rule, i, raw)
         for step, action, rows, detail in outcome.steps:
@@ -366,13 +411,14 @@ def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = 
         ledger.rows_quarantined += len(outcome.removed)
         typed = outcome.frame
     typed = _model_ready(typed, spec, raw, ledger, rejected)
+    imputed(typed, spec, ledger)
     time_column = spec.split.time_column
     if (
         time_column
         and time_column not in spec.feature_columns
         and time_column
         not in (
-            spec.id_column,
+            spec.id_name,
             spec.target.column,
         )
     ):
@@ -380,7 +426,7 @@ def validate_and_clean(raw: pd.DataFrame, spec: Spec, files: list[str] | None = 
     frame = typed.reset_index(drop=True)
     quarantine = rejected.table(raw)
     ledger.check(len(frame), len(quarantine))
-    if len(frame) == 0:
+    if len(frame) == 0 and not allow_empty:
         top = sorted(ledger.quarantined_by_reason().items(), key=lambda kv: -kv[1])[:5]
         summary = ", ".join(f"{reason} ({rows})" for reason, rows in top)
         raise InputError(

@@ -3,12 +3,14 @@
 
 from __future__ import annotations
 
-import codecs
 import difflib
 import glob
 import math
+from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
+from urllib.parse import unquote
 
 import numpy as np
 import pandas as pd
@@ -17,43 +19,30 @@ import pyarrow.parquet as pq
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import (
+    ROW_ID,
     FillRule,
     RangeRule,
     Spec,
     SpecError,
     resolve_source,
 )
-from entivec.schemas.tables import (
-    category_columns,
-    required_columns,
+from entivec.schemas.tables import category_columns, required_columns
+from entivec.tasks.ingest.common import (  # noqa: F401 - re-exported: callers import these names from here
+    _COMPRESSION_SUFFIXES,
+    _CSV_SUFFIXES,
+    _PARQUET_SUFFIXES,
+    BOOKKEEPING,
+    EXAMPLES,
+    QUARANTINE_STEM,
+    RAGGED,
+    RAW_LINE,
+    REASONS,
+    SOURCE_FILE,
+    SOURCE_ROW,
+    InputError,
 )
-
-SOURCE_FILE = "_source_file"
-SOURCE_ROW = "_source_row"
-BOOKKEEPING = (SOURCE_FILE, SOURCE_ROW)
-REASONS = "_reasons"
-QUARANTINE_STEM = "quarantine"
-
-_CSV_SUFFIXES = {".csv", ".tsv", ".txt"}
-_COMPRESSION_SUFFIXES = {".gz", ".bz2", ".zip", ".xz", ".zst"}
-_PARQUET_SUFFIXES = {".parquet", ".pq", ".parq"}
-EXAMPLES = 5  # row references quoted in a ledger step or an error message
-
-
-class InputError(Exception):
-    """Input that stops the run: the message names the file and, where it applies, the column and rows.
-
-    ``quarantine`` and ``ledger`` are set when cleaning got as far as rejecting every row, so a caller can
-    still write the quarantine for people to open.
-    """
-
-    def __init__(self, message: str, *, quarantine: pd.DataFrame | None = None, ledger: Ledger | None = None):
-        super().__init__(message)
-        self.quarantine = quarantine
-        self.ledger = ledger
-
+from entivec.tasks.ingest.csvfile import _is_utf8, _open_bytes, csv_batches, csv_header
 
 # --- spec checks that need more than the spec model itself ------------------------------------------------------
 
@@ -74,7 +63,7 @@ def check_spec_fits(spec: Spec, spec_path: str | Path | None = None) -> None:
                 f"(numeric columns, the target, a numeric time column)"
             )
         if isinstance(rule, FillRule):
-            if rule.column == spec.id_column:
+            if rule.column == spec.id_name:
                 raise SpecError(f"{where}{key} fills the id column {rule.column!r}; ids are never made up")
             if rule.column in numeric:
                 value = number_or_none(rule.value)
@@ -174,80 +163,51 @@ def _file_format(path: Path, declared: str) -> str:
     )
 
 
-def _python_encoding(spec: Spec, path: Path) -> str:
-    declared = spec.source.encoding
-    try:
-        name = codecs.lookup(declared).name
-    except LookupError:
-        raise InputError(
-            f"{path}: source.encoding {declared!r} is not an encoding Python knows (e.g. utf-8, latin-1, cp1252)"
-        ) from None
-    # A byte-order mark is common in files saved by spreadsheet programs; utf-8-sig reads files with and without.
-    return "utf-8-sig" if name == "utf-8" else declared
-
-
-def _decode_error(path: Path, declared: str, exc: UnicodeDecodeError) -> InputError:
-    where = f"byte 0x{exc.object[exc.start : exc.start + 1].hex()}"
-    if path.suffix.lower() not in _COMPRESSION_SUFFIXES:
-        # The parser's position is inside one chunk; find the line in the whole file (error path only).
-        data = path.read_bytes()
-        try:
-            data.decode(declared)
-        except UnicodeDecodeError as whole:
-            line = data.count(b"\n", 0, whole.start) + 1
-            where = f"byte 0x{data[whole.start : whole.start + 1].hex()} on line {line}"
-    return InputError(
-        f"{path}: cannot be decoded as {declared} ({where}); the spec declares source.encoding: {declared}. "
-        f"Set source.encoding to the file's real encoding (for example latin-1 or cp1252)"
-    )
-
-
-def _csv_options(spec: Spec, path: Path) -> dict[str, Any]:
-    return {"encoding": _python_encoding(spec, path), "sep": spec.source.delimiter}
-
-
 def _read_header(path: Path, fmt: str, spec: Spec) -> list[str]:
     try:
-        if fmt == "parquet":
-            names = [str(c) for c in pq.read_schema(path).names]
-            first_line = names
-        else:
-            options = _csv_options(spec, path)
-            names = [str(c) for c in pd.read_csv(path, nrows=0, **options).columns]
-            # pandas renames a repeated header ("weight", "weight.1"); the first line read as data shows it.
-            first_line = pd.read_csv(path, nrows=1, header=None, dtype=str, **options).iloc[0].tolist()
+        names = [str(c) for c in pq.read_schema(path).names] if fmt == "parquet" else csv_header(path, spec)
     except Exception as exc:
         raise _read_error(path, fmt, spec, exc) from None
-    written = [c for c in first_line if isinstance(c, str)]
-    repeated = sorted({c for c in written if written.count(c) > 1})
+    repeated = sorted({c for c in names if names.count(c) > 1})
     if repeated:
         raise InputError(f"{path}: column name(s) {', '.join(map(repr, repeated))} appear more than once in the header")
     return names
 
 
-def _read_body(path: Path, fmt: str, spec: Spec, header: list[str]) -> pd.DataFrame:
+def _decode_error(path: Path, declared: str) -> InputError:
+    where = ""
     try:
-        if fmt == "parquet":
-            return pd.read_parquet(path)
-        text = {c: str for c in category_columns(spec) if c in header}
-        return pd.read_csv(path, dtype=text, low_memory=False, **_csv_options(spec, path))
-    except Exception as exc:
-        raise _read_error(path, fmt, spec, exc) from None
+        with _open_bytes(path) as handle:
+            data = handle.read()  # error path only: find the first byte that does not decode, and its line
+        data.decode("utf-8-sig" if _is_utf8(declared) else declared)
+    except UnicodeDecodeError as whole:
+        line = data.count(b"\n", 0, whole.start) + 1
+        where = f" (byte 0x{data[whole.start : whole.start + 1].hex()} on line {line})"
+    except (OSError, EOFError):
+        pass
+    return InputError(
+        f"{path}: cannot be decoded as {declared}{where}; the spec declares source.encoding: {declared}. "
+        f"Set source.encoding to the file's real encoding (for example latin-1 or cp1252)"
+    )
 
 
 def _read_error(path: Path, fmt: str, spec: Spec, exc: Exception) -> Exception:
     """Turn a reader's exception into an InputError, except I/O trouble that a retry may cure."""
     if isinstance(exc, InputError):
         return exc
-    if isinstance(exc, UnicodeDecodeError):
-        return _decode_error(path, spec.source.encoding, exc)
+    if isinstance(exc, UnicodeDecodeError) or (
+        isinstance(exc, pyarrow_lib.ArrowInvalid) and "invalid UTF8" in str(exc)
+    ):
+        return _decode_error(path, spec.source.encoding)
     if isinstance(exc, (FileNotFoundError, PermissionError, IsADirectoryError)):
         return InputError(f"{path}: cannot be opened ({exc.strerror or exc})")
     if isinstance(exc, OSError) and exc.errno is not None:
         return exc  # a real I/O fault (network share, disk): left as OSError so the task's retries apply
-    if isinstance(exc, pd.errors.EmptyDataError):
+    if isinstance(exc, pd.errors.EmptyDataError) or (
+        isinstance(exc, pyarrow_lib.ArrowInvalid) and "Empty CSV file" in str(exc)
+    ):
         return InputError(f"{path}: the file is empty (no header, no rows)")
-    if isinstance(exc, pd.errors.ParserError):
+    if isinstance(exc, (pd.errors.ParserError, pyarrow_lib.ArrowInvalid)) and fmt == "csv":
         return InputError(
             f"{path}: not readable as CSV with delimiter {spec.source.delimiter!r} (spec key source.delimiter): {exc}"
         )
@@ -259,7 +219,8 @@ def _read_error(path: Path, fmt: str, spec: Spec, exc: Exception) -> Exception:
 
 
 def _check_columns(path: Path, columns: list[str], spec: Spec, fmt: str) -> None:
-    clash = [c for c in (*BOOKKEEPING, REASONS) if c in columns]
+    reserved = (*BOOKKEEPING, REASONS, *([ROW_ID] if spec.id_column is None else []))
+    clash = [c for c in reserved if c in columns]
     if clash:
         raise InputError(f"{path}: column {clash[0]!r} is a name entivec reserves for bookkeeping; rename it")
     required = required_columns(spec)
@@ -285,18 +246,48 @@ def close_hint(name: str, columns: list[str]) -> str:
     return f" (did you mean {close[0]!r}?)" if close else ""
 
 
-def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
-    """Read the spec's source (one file or a glob) into one frame with ``_source_file`` and ``_source_row``.
+def _partition_values(path: Path, root: Path | None) -> dict[str, str]:
+    """Hive-style partition keys in the folders between ``root`` and the file (``day=2026-01-05/part-0.parquet``)."""
+    if root is None:
+        return {}
+    keys = {}
+    for part in path.relative_to(root).parts[:-1]:
+        key, sep, value = part.partition("=")
+        if sep and key:
+            keys[unquote(key)] = unquote(value)  # writers percent-encode (pyarrow's default segment encoding)
+    return keys
 
-    Category and id columns are read as text. Files of a glob are read in sorted path order and must have the
-    same columns (in any order; the first file's order is kept). Every file-level fault raises InputError.
-    """
+
+@dataclass
+class SourceFiles:
+    """The files of a spec's source, checked: same columns everywhere, every required column present."""
+
+    pattern: str
+    paths: list[Path]
+    formats: list[str]
+    columns: list[str]  # the first file's column order (partition keys last)
+    root: Path | None = None  # the partitioned folder, when the source is one
+
+    @property
+    def names(self) -> list[str]:
+        return [str(p) for p in self.paths]
+
+
+def source_files(spec: Spec, spec_path: str | Path) -> SourceFiles:
+    """Find and check the spec's files (one file, a glob, or a folder of Parquet files partitioned as
+    ``key=value`` folders); headers only, so a missing column or a mismatched file fails before any large read."""
     check_spec_fits(spec, spec_path)
     pattern = resolve_source(spec, spec_path)
-    paths = _match_files(pattern)
+    root = Path(pattern) if Path(pattern).is_dir() else None
+    if root is not None:
+        paths = sorted(p for p in root.rglob("*") if p.is_file() and p.suffix.lower() in _PARQUET_SUFFIXES)
+        if not paths:
+            raise InputError(f"source {root}: is a folder without Parquet files (spec key source.path); use a glob "
+                             f"such as {root / '*.csv'} for CSV files")
+    else:
+        paths = _match_files(pattern)
     formats = [_file_format(p, spec.source.format) for p in paths]
-    # Headers first: a missing column or a mismatched file fails before any large read.
-    headers = [_read_header(p, f, spec) for p, f in zip(paths, formats, strict=True)]
+    headers = [_read_header(p, f, spec) + list(_partition_values(p, root)) for p, f in zip(paths, formats, strict=True)]
     for path, fmt, header in zip(paths, formats, headers, strict=True):
         _check_columns(path, header, spec, fmt)
     first = headers[0]
@@ -311,18 +302,50 @@ def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[s
                 + (f"has extra {extra} " if extra else "")
                 + f"compared with {paths[0]}"
             )
-    frames = []
-    for path, fmt, header in zip(paths, formats, headers, strict=True):
-        body = _read_body(path, fmt, spec, header)
-        if len(body) == 0:
-            raise InputError(f"{path}: has a header but no data rows")
-        body = body[first]
-        body[SOURCE_FILE] = str(path)
-        body[SOURCE_ROW] = np.arange(1, len(body) + 1, dtype=np.int64)
-        frames.append(body)
-    raw = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
-    return raw.reset_index(drop=True), [str(p) for p in paths]
+    return SourceFiles(pattern, paths, formats, first, root)
 
+
+def file_batches(source: SourceFiles, i: int, spec: Spec, batch_rows: int = 1 << 20) -> Iterator[pd.DataFrame]:
+    """The rows of the source's i-th file as frames of at most about ``batch_rows`` rows, with ``_source_file``
+    and ``_source_row`` (and ``_raw_line`` where a CSV line was ragged); columns in the first file's order."""
+    path, fmt = source.paths[i], source.formats[i]
+    partition = _partition_values(path, source.root)
+    rows = 0
+    try:
+        if fmt == "parquet":
+            for batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows):
+                frame = batch.to_pandas()
+                for key, value in partition.items():
+                    frame[key] = value
+                frame = frame[source.columns]
+                frame[SOURCE_FILE] = str(path)
+                frame[SOURCE_ROW] = np.arange(rows + 1, rows + len(frame) + 1, dtype=np.int64)
+                rows += len(frame)
+                yield frame
+        else:
+            # About 100 bytes a CSV row: blocks of that many bytes give batches of roughly batch_rows rows.
+            for frame in csv_batches(path, spec, source.columns, batch_bytes=max(1 << 12, batch_rows * 100)):
+                rows += len(frame)
+                yield frame[[*source.columns, *(c for c in BOOKKEEPING if c in frame.columns)]]
+    except InputError:
+        raise
+    except Exception as exc:
+        raise _read_error(path, fmt, spec, exc) from None
+    if rows == 0:
+        raise InputError(f"{path}: has a header but no data rows")
+
+
+def read_source(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
+    """Read the spec's source (one file, a glob or a partitioned folder) into one frame with ``_source_file``
+    and ``_source_row``: the batches of :func:`file_batches`, concatenated.
+
+    Category and id columns are read as text. Files of a glob are read in sorted path order and must have the
+    same columns (in any order; the first file's order is kept). Every file-level fault raises InputError.
+    """
+    source = source_files(spec, spec_path)
+    frames = [frame for i in range(len(source.paths)) for frame in file_batches(source, i, spec)]
+    raw = frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
+    return raw.reset_index(drop=True), source.names
 
 
 # --- Prefect tasks ----------------------------------------------------------------------------------------------

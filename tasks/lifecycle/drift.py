@@ -281,7 +281,7 @@ def _kind_read_as(spec: Spec | None, column: str) -> str:
     # Category and id columns are always read as text, whatever the file holds.
     if spec is None:
         return "inferred"
-    return "text" if column in (spec.id_column, *spec.embed_names, *spec.onehot_names) else "inferred"
+    return "text" if column in (spec.id_name, *spec.embed_names, *spec.onehot_names) else "inferred"
 
 
 def schema_changes(reference: Reference, raw: pd.DataFrame, spec: Spec) -> tuple[list[SchemaChange], list[str]]:

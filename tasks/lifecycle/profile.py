@@ -77,7 +77,7 @@ def value_kind(series: pd.Series) -> str:
 
 def column_roles(spec: Spec) -> dict[str, str]:
     """Each column the spec names, with its role."""
-    roles = {spec.id_column: "id", spec.target.column: "target"}
+    roles = {spec.id_name: "id", spec.target.column: "target"}
     roles |= {c: "embed" for c in spec.embed_names}
     roles |= {c: "onehot" for c in spec.onehot_names}
     roles |= {c: "numeric" for c in spec.numeric_names}

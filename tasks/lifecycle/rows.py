@@ -34,7 +34,7 @@ def write_train_ids(train_rows: pd.DataFrame, spec: Spec, folder: str | Path) ->
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / Path(TRAIN_IDS_ARTIFACT).name
-    pd.DataFrame({"id": id_strings(train_rows[spec.id_column])}).to_parquet(path, index=False)
+    pd.DataFrame({"id": id_strings(train_rows[spec.id_name])}).to_parquet(path, index=False)
     return path
 
 
@@ -92,7 +92,7 @@ def unseen_rows(
     data_fingerprint: str,
 ) -> JudgedRows:
     """The held-out rows no judged version trained on, and how that was established for each version."""
-    ids = id_strings(test_rows[spec.id_column])
+    ids = id_strings(test_rows[spec.id_name])
     keep = np.ones(len(test_rows), dtype=bool)
     notes, checks = {}, []
     policy = spec.promotion

@@ -25,8 +25,6 @@ import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.settings import project_home
-from entivec.tasks.apply import lookup
-from entivec.tasks.apply.served import example_warnings_quiet, input_example_for, signature_for
 from entivec.tasks.lifecycle import lineage, registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
@@ -34,7 +32,8 @@ LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
 MAX_PARAM_LENGTH = 500
 MODEL_ARTIFACT = "lookup_model"  # the registered pyfunc model's folder inside the train run
 # Read by MLflow, never imported here: importing it would declare the model as a side effect.
-LOOKUP_MODEL_CODE = Path(lookup.__file__).with_name("lookup_model_entry.py")
+# By path, not by importing the apply room: that would load torch into every command that only reads runs.
+LOOKUP_MODEL_CODE = Path(__file__).parents[1] / "apply" / "lookup_model_entry.py"
 
 
 def operator() -> str:
@@ -135,6 +134,8 @@ def register_version(
     """
     import mlflow.pyfunc
 
+    from entivec.tasks.apply.served import example_warnings_quiet, input_example_for, signature_for
+
     vector_set = VectorSet.load(vector_set_folder)
     c = registry.client()
     project_home().mkdir(parents=True, exist_ok=True)
@@ -209,13 +210,14 @@ def copy_into(src: Path, dst: Path) -> None:
     shutil.copy2(src, dst)
 
 
-RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "data_fingerprint", "user", "run_id", "note"]
+RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "verdict", "data_fingerprint", "user", "run_id", "note"]
 
 
 def run_log(name: str, limit: int = 50) -> pd.DataFrame:
     """The runs of a model's experiment, newest first: trains, skips ("no new data"), drift stops, gates, sweeps.
 
-    ``version`` is the registered version a train run became, if any. ``note`` is the first line of the run's
+    ``version`` is the registered version a train run became, or the candidate a gate run judged (``verdict``
+    pass, fail or forced). ``note`` is the first line of the run's
     note (its summary, or the reason nothing was trained). Versions tell what was made; this tells what was
     attempted, which is where a scheduled run that trained nothing leaves its trace.
     """
@@ -235,7 +237,9 @@ def run_log(name: str, limit: int = 50) -> pd.DataFrame:
             "started": datetime.fromtimestamp(run.info.start_time / 1000, UTC).isoformat(timespec="seconds"),
             "kind": tags.get(f"{registry.TAG_PREFIX}kind", ""),
             "status": run.info.status,
-            "version": by_run.get(run.info.run_id, ""),
+            # A gate run judged a candidate: its version and verdict are in the run's tags.
+            "version": by_run.get(run.info.run_id, tags.get(f"{registry.TAG_PREFIX}candidate_version", "")),
+            "verdict": tags.get(f"{registry.TAG_PREFIX}verdict", ""),
             "data_fingerprint": tags.get(f"{registry.TAG_PREFIX}data_fingerprint", "")[:12],
             "user": tags.get("mlflow.user", ""),
             "run_id": run.info.run_id,

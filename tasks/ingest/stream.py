@@ -1,0 +1,219 @@
+"""Ingestion as a stream: a table of any length read, validated and cleaned batch by batch at bounded memory.
+
+Two passes over the source, each holding one batch at a time:
+
+1. **Ids and fingerprint.** Every id goes, with its row's position, to one of ``PARTITIONS`` Arrow files on disk
+   chosen by a hash of the id; each partition is then small enough to find its shared ids in memory. What
+   survives of it is the sorted positions of rows whose id is shared: no set of all ids is ever built. The
+   fingerprint is fed here too.
+2. **Validate, rules, model-readiness.** Each batch goes through :func:`validate_and_clean` (the same pandera
+   schema and rules as a table read whole), told which of its rows share an id with any other row. Cleaned
+   rows are appended to ``cleaned.arrow``, rejected ones with every reason to ``quarantine.parquet``, and the
+   batch ledgers are summed; at the end ``rows in = used + quarantined`` is checked for the whole table.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from entivec.schemas.ledger import Ledger
+from entivec.schemas.spec import ROW_ID, Spec
+from entivec.schemas.tables import parse_times
+from entivec.schemas.vocabulary import category_strings
+from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.fingerprint import StreamFingerprint
+from entivec.tasks.ingest.read import (
+    RAW_LINE,
+    REASONS,
+    SOURCE_FILE,
+    SOURCE_ROW,
+    InputError,
+    SourceFiles,
+    file_batches,
+    source_files,
+)
+
+PARTITIONS = 64
+CLEANED = "cleaned.arrow"  # Arrow IPC: written and read back fast, columns memory-mapped on demand
+QUARANTINE = "quarantine.parquet"
+BATCH_ROWS = 1 << 18  # about 262,000 rows: a few hundred MB of pandas at most
+
+
+@dataclass
+class StreamedTable:
+    """Where a streamed ingestion left its rows, and what it found."""
+
+    folder: Path
+    ledger: Ledger
+    fingerprint: dict
+    files: list[str]
+    duplicate_rows: int
+    newest_time: object = None  # the newest time of the split's time column among the cleaned rows
+    batches: int = 0
+    seconds: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def cleaned(self) -> Path:
+        return self.folder / CLEANED
+
+    @property
+    def quarantine(self) -> Path:
+        return self.folder / QUARANTINE
+
+
+def batches(spec: Spec, source: SourceFiles, batch_rows: int) -> object:
+    """(first row position in the whole table, batch) for every batch of every file, in read order."""
+    offset = 0
+    for i in range(len(source.paths)):
+        for frame in file_batches(source, i, spec, batch_rows):
+            yield offset, frame
+            offset += len(frame)
+
+
+def _id_partition(ids: pd.Series) -> np.ndarray:
+    return (pd.util.hash_pandas_object(ids, index=False).to_numpy() % np.uint64(PARTITIONS)).astype(np.int64)
+
+
+def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: int,
+                   fingerprint: StreamFingerprint | None = None) -> np.ndarray:
+    """Sorted positions (in the whole table) of rows whose id another row shares; missing ids are left out.
+
+    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own.
+    """
+    folder.mkdir(parents=True, exist_ok=True)
+    schema = pa.schema([("id", pa.string()), ("row", pa.int64())])
+    writers: dict[int, pa.ipc.RecordBatchFileWriter] = {}
+    try:
+        for offset, frame in batches(spec, source, batch_rows):
+            if fingerprint is not None:
+                fingerprint.update(frame)
+            if spec.id_column is None:
+                continue  # row numbers are unique by construction
+            ids = category_strings(frame[spec.id_column])
+            present = ids.notna().to_numpy()
+            ids = ids[present]
+            rows = offset + np.flatnonzero(present)
+            part = _id_partition(ids)
+            order = np.argsort(part, kind="stable")
+            bounds = np.searchsorted(part[order], np.arange(PARTITIONS + 1))
+            table = pa.table([pa.array(ids, pa.string()), pa.array(rows, pa.int64())], schema=schema).take(order)
+            for p in range(PARTITIONS):
+                if bounds[p + 1] == bounds[p]:
+                    continue
+                if p not in writers:
+                    writers[p] = pa.ipc.new_file(str(folder / f"ids-{p:03d}.arrow"), schema)
+                writers[p].write_table(table.slice(bounds[p], bounds[p + 1] - bounds[p]))
+    finally:
+        for writer in writers.values():
+            writer.close()
+    shared = []
+    for p in sorted(writers):
+        path = folder / f"ids-{p:03d}.arrow"
+        with pa.memory_map(str(path)) as source_file:
+            table = pa.ipc.open_file(source_file).read_all().to_pandas()
+        repeated = table["id"].duplicated(keep=False).to_numpy()
+        shared.append(table["row"].to_numpy()[repeated])
+        path.unlink()
+    return np.sort(np.concatenate(shared)) if shared else np.zeros(0, dtype=np.int64)
+
+
+def _quarantine_schema(source: SourceFiles, spec: Spec) -> pa.Schema:
+    # Values as read, as text: one type per column whatever each batch held.
+    names = [*source.columns, *([ROW_ID] if spec.id_column is None else []), RAW_LINE]
+    fields = [(REASONS, pa.string()), (SOURCE_FILE, pa.string()), (SOURCE_ROW, pa.int64())]
+    fields += [(str(c), pa.string()) for c in names]
+    return pa.schema(fields)
+
+
+def quarantine_table(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
+    """A quarantine frame in the stream's fixed layout (every value as text)."""
+    columns = {}
+    for name in schema.names:
+        if name == SOURCE_ROW:
+            columns[name] = pa.array(frame[name].to_numpy(dtype=np.int64), pa.int64())
+            continue
+        values = frame[name] if name in frame.columns else pd.Series([None] * len(frame), dtype=object)
+        text = values.astype("string")
+        columns[name] = pa.array(text.to_numpy(dtype=object, na_value=None), pa.string())
+    return pa.table(columns, schema=schema)
+
+
+def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS) -> StreamedTable:
+    """Read, validate and clean the spec's source batch by batch into ``folder`` (see the module's docstring).
+
+    Raises InputError for file-level faults and when no row survives (the quarantine file stays in ``folder``
+    for the caller to keep), as the whole-table path does.
+    """
+    source = source_files(spec, spec_path)
+    fingerprint = StreamFingerprint(source.columns)
+    tick = time.perf_counter()
+    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint)
+    seconds = {"ids and fingerprint": time.perf_counter() - tick}
+    tick = time.perf_counter()
+    ledger = Ledger(rows_in=0, files=source.names)
+    cleaned_writer = quarantine_writer = None
+    cleaned_schema = None
+    q_schema = _quarantine_schema(source, spec)
+    newest = None
+    count = used = 0
+    time_column = spec.split.time_column
+    try:
+        quarantine_writer = pq.ParquetWriter(folder / QUARANTINE, q_schema)
+        for offset, frame in batches(spec, source, batch_rows):
+            count += 1
+            lo, hi = np.searchsorted(shared, [offset, offset + len(frame)])
+            result = validate_and_clean(frame, spec, source.names, duplicates=shared[lo:hi] - offset,
+                                        first_row_id=offset + 1, allow_empty=True)
+            ledger.add(result.ledger)
+            if len(result.quarantine):
+                quarantine_writer.write_table(quarantine_table(result.quarantine, q_schema))
+            if not len(result.frame):
+                continue
+            typed = result.frame
+            table = pa.Table.from_pandas(typed, preserve_index=False)
+            if cleaned_writer is None:
+                cleaned_schema = table.schema
+                cleaned_writer = pa.ipc.new_file(str(folder / CLEANED), cleaned_schema)
+            else:
+                table = table.cast(cleaned_schema)
+            cleaned_writer.write_table(table)
+            used += table.num_rows
+            if time_column:
+                times = parse_times(typed[time_column])
+                top = times.max()
+                newest = top if newest is None or (pd.notna(top) and top > newest) else newest
+    finally:
+        for writer in (cleaned_writer, quarantine_writer):
+            if writer is not None:
+                writer.close()
+    seconds["validate and clean"] = time.perf_counter() - tick
+    quarantined = pq.ParquetFile(folder / QUARANTINE).metadata.num_rows
+    ledger.check(used, quarantined)
+    if used == 0:
+        top = sorted(ledger.quarantined_by_reason().items(), key=lambda kv: -kv[1])[:5]
+        summary = ", ".join(f"{reason} ({rows})" for reason, rows in top)
+        raise InputError(f"{', '.join(source.names)}: all {ledger.rows_in} row(s) were quarantined; most common "
+                         f"reasons: {summary}", ledger=ledger)
+    return StreamedTable(folder, ledger, fingerprint.result(source.names), source.names, len(shared), newest,
+                         count, seconds)
+
+
+def cleaned_table(path: Path) -> pa.Table:
+    """The cleaned rows as an Arrow table over the memory-mapped file: columns are read when used."""
+    return pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+
+
+def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int = BATCH_ROWS) -> object:
+    """The cleaned rows back, batch by batch, as pandas frames."""
+    table = cleaned_table(path)
+    if columns is not None:
+        table = table.select(columns)
+    for batch in table.to_batches(max_chunksize=batch_rows):
+        yield batch.to_pandas()

@@ -1,0 +1,178 @@
+"""The encoded working set of a streamed run: int32 ids and float32 inputs as memory-mapped ``.npy`` files.
+
+Built from the cleaned rows a streamed ingestion wrote (``tasks/ingest/stream.py``), one batch at a time:
+
+1. **Split and count.** Each batch is split (``hash`` or ``time``; the side of a row depends on that row alone),
+   and the categories of its training rows are counted; summed counts give the vocabularies
+   (``Vocabulary.from_counts``: the same ids as a table read whole). One-hot levels are collected the same way.
+2. **Numeric statistics.** Per numeric column, its training values are read as one column (8 bytes a row, the
+   largest array the run holds) and given to the encoder's own functions, so medians and standardisation equal
+   those of a table read whole.
+3. **Encode.** Each batch is encoded by the fitted :class:`FeatureEncoder` and written into preallocated
+   memory-mapped arrays, training rows and held-out rows apart.
+
+:meth:`WorkingSet.blocks` reads the training arrays back as blocks of pieces from random places, shuffled
+inside each block, releasing the pages after each block, so memory stays at one block.
+"""
+
+from __future__ import annotations
+
+import mmap
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from entivec.schemas.spec import Spec, SpecError
+from entivec.schemas.vocabulary import Vocabulary, category_strings
+from entivec.tasks.ingest.split import rolling_cutoff, test_mask
+from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_table, read_cleaned
+from entivec.tasks.train import targets
+from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder, numeric_stats
+
+PARTS = ("train", "test")
+
+
+def _open(path: Path, shape: tuple[int, ...], dtype: str) -> np.memmap:
+    return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
+
+
+def _release(array: np.ndarray) -> None:
+    # Give back the pages of a memory-mapped array read so far: they count as the process's resident memory.
+    handle = getattr(array, "_mmap", None)
+    if handle is not None and hasattr(mmap, "MADV_DONTNEED"):
+        handle.madvise(mmap.MADV_DONTNEED)
+
+
+@dataclass
+class WorkingSet:
+    folder: Path
+    embed_columns: list[str]
+    dense_names: list[str]
+    rows: dict[str, int]
+
+    def path(self, part: str, what: str) -> Path:
+        return self.folder / f"{part}-{what}.npy"
+
+    def arrays(self, part: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(ids int32 (n, k), dense float32 (n, d), y float32 (n,)) of ``part``, memory-mapped read-only."""
+        return tuple(np.load(self.path(part, w), mmap_mode="r", allow_pickle=False) for w in ("ids", "dense", "y"))
+
+    def inputs(self, part: str) -> tuple[EncodedInputs, np.ndarray]:
+        """The part's rows in memory, as the in-memory trainer takes them (for a table that fits)."""
+        ids, dense, y = self.arrays(part)
+        return EncodedInputs(np.asarray(ids, dtype=np.int64), np.array(dense)), np.array(y, dtype=np.float64)
+
+    def blocks(
+        self, part: str, block_rows: int, seed: int, exclude: np.ndarray | None = None, mix: int = 16
+    ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """One pass over ``part`` in blocks of about ``block_rows`` rows, each made of ``mix`` pieces from random
+        places of the arrays (a seeded order of pieces), its rows shuffled together; rows at the sorted
+        positions ``exclude`` are left out.
+
+        Mixing pieces matters when the rows were written in an order that means something (sorted by time,
+        by price, by file): a block of neighbouring rows alone would give batches far from a random sample.
+        """
+        ids, dense, y = self.arrays(part)
+        exclude = np.zeros(0, dtype=np.int64) if exclude is None else np.asarray(exclude, dtype=np.int64)
+        n = len(y)
+        rng = np.random.default_rng(seed)
+        piece = max(1, block_rows // max(1, mix))
+        starts = rng.permutation(np.arange(0, n, piece))
+        for g in range(0, len(starts), mix):
+            group = np.sort(starts[g: g + mix])
+            positions = np.concatenate([np.arange(s, min(s + piece, n)) for s in group])
+            if len(exclude):
+                at = np.minimum(np.searchsorted(exclude, positions), len(exclude) - 1)
+                positions = positions[exclude[at] != positions]
+            positions = positions[rng.permutation(len(positions))]
+            block = (np.take(ids, positions, axis=0), np.take(dense, positions, axis=0), np.take(y, positions))
+            for array in (ids, dense, y):
+                _release(array)
+            yield block
+
+    def bytes_on_disk(self) -> int:
+        return sum(self.path(p, w).stat().st_size for p in PARTS for w in ("ids", "dense", "y"))
+
+
+def _split_mask(frame: pd.DataFrame, spec: Spec, cutoff: object) -> np.ndarray:
+    return test_mask(frame, spec.split, spec.id_name, cutoff)
+
+
+def build_working_set(
+    streamed: StreamedTable, spec: Spec, previous: dict[str, Vocabulary] | None = None,
+    batch_rows: int = BATCH_ROWS,
+) -> tuple[WorkingSet, dict[str, Vocabulary], FeatureEncoder]:
+    """Split, count, fit the encoder and encode the cleaned rows of ``streamed`` into its folder."""
+    if spec.split.method == "random":
+        raise SpecError("spec: a streamed run splits by split.method: hash (a seeded hash of the id, stable across "
+                        "drops) or time; random draws a permutation of the whole table")
+    cutoff = rolling_cutoff(pd.Series([streamed.newest_time]), spec.split) if spec.split.last_weeks else None
+    previous = previous or {}
+    counts = {c: pd.Series(dtype=np.int64) for c in spec.embed_names}
+    missing = dict.fromkeys(spec.embed_names, 0)
+    levels: dict[str, set[str]] = {c: set() for c in spec.onehot_names}
+    is_test = np.zeros(0, dtype=bool)
+    parts = []
+    for frame in read_cleaned(streamed.cleaned, batch_rows=batch_rows):
+        test = _split_mask(frame, spec, cutoff)
+        parts.append(test)
+        train = frame[~test]
+        for c in spec.embed_names:
+            strings = category_strings(train[c])
+            counts[c] = counts[c].add(strings.value_counts(dropna=True), fill_value=0)
+            missing[c] += int(strings.isna().sum())
+        for c in spec.onehot_names:
+            levels[c].update(str(v) for v in category_strings(train[c]).dropna().unique())
+    is_test = np.concatenate(parts) if parts else is_test
+    n_train, n_test = int((~is_test).sum()), int(is_test.sum())
+    if n_train == 0 or n_test == 0:
+        raise SpecError(f"spec: the split leaves the {'train' if n_train == 0 else 'test'} part empty "
+                        f"({n_train} training rows, {n_test} held-out rows)")
+    vocabularies = {
+        col.name: Vocabulary.from_counts(col.name, counts[col.name], n_train, missing[col.name], col.min_count,
+                                         previous.get(col.name))
+        for col in spec.columns.embed
+    }
+    stats = []
+    for col in spec.columns.numeric:
+        values = cleaned_table(streamed.cleaned).column(col.name).to_numpy()
+        stats.append(numeric_stats(np.asarray(values, dtype=np.float64)[~is_test], col))
+        del values
+    encoder = FeatureEncoder.from_stats(spec, vocabularies, stats, {c: sorted(v) for c, v in levels.items()})
+
+    folder = streamed.folder
+    ws = WorkingSet(folder, list(spec.embed_names), encoder.dense_names, {"train": n_train, "test": n_test})
+    k, d = len(spec.embed_names), len(encoder.dense_names)
+    out = {p: (_open(ws.path(p, "ids"), (ws.rows[p], k), "int32"), _open(ws.path(p, "dense"), (ws.rows[p], d),
+                                                                         "float32"),
+               _open(ws.path(p, "y"), (ws.rows[p],), "float32")) for p in PARTS}
+    at = dict.fromkeys(PARTS, 0)
+    seen = 0
+    target = spec.target.column
+    for frame in read_cleaned(streamed.cleaned, batch_rows=batch_rows):
+        test = is_test[seen: seen + len(frame)]
+        seen += len(frame)
+        for part, rows in (("train", frame[~test]), ("test", frame[test])):
+            if not len(rows):
+                continue
+            encoded = encoder.transform(rows)
+            y = rows[target].to_numpy(dtype=np.float64)
+            if part == "train":
+                y = targets.forward(y, spec.target.transform)
+            ids, dense, yy = out[part]
+            lo, hi = at[part], at[part] + len(rows)
+            ids[lo:hi] = encoded.cat_ids
+            dense[lo:hi] = encoded.dense
+            yy[lo:hi] = y
+            at[part] = hi
+            for array in out[part]:
+                array.flush()
+                _release(array)
+    for arrays in out.values():
+        for array in arrays:
+            array.flush()
+            del array
+    return ws, vocabularies, encoder
