@@ -218,3 +218,17 @@ def test_runs_list_gate_candidates_and_verdicts(cli, store):
     assert gate["note"] == "gate of stones version 2"  # Markdown marks taken out
     code, out = cli("runs", store.name)
     assert max(map(len, out.splitlines())) <= 80, out
+
+
+def test_every_user_error_named_by_the_cli_exists():
+    """The CLI matches user errors by their defining module and name (so read commands need not import them):
+    a class moved to another module must be renamed there too, or its errors would exit 1 with a traceback hint."""
+    import importlib
+
+    from entivec.cli import USER_ERRORS
+
+    for qualified in sorted(USER_ERRORS):
+        module, _, name = qualified.rpartition(".")
+        found = getattr(importlib.import_module(module), name, None)
+        assert isinstance(found, type) and issubclass(found, BaseException), qualified
+        assert f"{found.__module__}.{found.__qualname__}" == qualified, f"{qualified} is defined elsewhere"

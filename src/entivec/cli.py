@@ -30,9 +30,8 @@ EXIT_FAILED = 1  # anything else
 USER_ERRORS = frozenset({
     "entivec.schemas.spec.SpecError",
     "entivec.settings.SettingsError",
-    "entivec.tasks.ingest.read.InputError",  # DriftStop and the apply job's input errors are InputErrors
-    "entivec.tasks.lifecycle.registry.RegistryError",  # LifecycleError (rollback with nothing to go back to)
-    "entivec.tasks.lifecycle.store.RegistryError",  # where RegistryError now lives (registry re-exports it)
+    "entivec.tasks.ingest.common.InputError",  # DriftStop and the apply job's input errors are InputErrors
+    "entivec.tasks.lifecycle.store.RegistryError",  # LifecycleError (rollback with nothing to go back to)
     "entivec.schemas.ledger.LedgerMismatch",
     "entivec.tasks.apply.lookup.UnknownCategoryError",
     "entivec.tasks.apply.lookup.CategoryTypeError",
