@@ -14,6 +14,7 @@ Two passes over the source, each holding one batch at a time:
 
 from __future__ import annotations
 
+import mmap
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -205,15 +206,40 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
                          count, seconds)
 
 
-def cleaned_table(path: Path) -> pa.Table:
+class MappedFile:
+    """A file memory-mapped read-only whose pages can be handed back: pages read through a mapping count as the
+    process's resident memory until then, so a pass over a large file would otherwise grow with the file."""
+
+    def __init__(self, path: Path) -> None:
+        with open(path, "rb") as handle:
+            self.map = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+
+    def release(self) -> None:
+        if hasattr(mmap, "MADV_DONTNEED"):
+            self.map.madvise(mmap.MADV_DONTNEED)
+
+
+def cleaned_table(path: Path, mapped: MappedFile | None = None) -> pa.Table:
     """The cleaned rows as an Arrow table over the memory-mapped file: columns are read when used."""
-    return pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+    mapped = mapped or MappedFile(path)
+    return pa.ipc.open_file(pa.BufferReader(pa.py_buffer(mapped.map))).read_all()
+
+
+def cleaned_column(path: Path, name: str) -> np.ndarray:
+    """One column of the cleaned rows as a numpy array (a copy; the mapped pages are handed back)."""
+    mapped = MappedFile(path)
+    values = cleaned_table(path, mapped).column(name).to_numpy()
+    mapped.release()
+    return values
 
 
 def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int = BATCH_ROWS) -> object:
-    """The cleaned rows back, batch by batch, as pandas frames."""
-    table = cleaned_table(path)
+    """The cleaned rows back, batch by batch, as pandas frames; each batch's mapped pages are handed back."""
+    mapped = MappedFile(path)
+    table = cleaned_table(path, mapped)
     if columns is not None:
         table = table.select(columns)
     for batch in table.to_batches(max_chunksize=batch_rows):
-        yield batch.to_pandas()
+        frame = batch.to_pandas()
+        mapped.release()
+        yield frame

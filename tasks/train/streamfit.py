@@ -30,7 +30,7 @@ from entivec.tasks.train.trainer import (
     _torch_state,
     default_threads,
 )
-from entivec.tasks.train.workset import WorkingSet
+from entivec.tasks.train.workset import WorkingSet, release
 
 BLOCK_ROWS = 1 << 18
 
@@ -50,6 +50,7 @@ def _target_scale(y: np.ndarray, skip: np.ndarray, block: int = 1 << 22) -> tupl
     count, mean, m2 = 0, 0.0, 0.0
     for start in range(0, len(y), block):
         values = np.asarray(y[start: start + block], dtype=np.float64)[keep[start: start + block]]
+        release(y)
         if not len(values):
             continue
         n, m = len(values), float(values.mean())
@@ -76,6 +77,8 @@ def fit_from_working_set(
         shift, scale = _target_scale(y_all, valid_at)
     else:
         shift, scale = 0.0, 1.0
+    for array in (ids_all, dense_all, y_all):
+        release(array)  # the sample touched pages all over the arrays
     valid = _Tensors(valid_inputs, (valid_y - shift) / scale)
     n = n_all - len(valid_at)
     n_dense = dense_all.shape[1]
