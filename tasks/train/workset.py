@@ -138,8 +138,9 @@ def build_working_set(
     }
     stats = []
     for col in spec.columns.numeric:
-        values = cleaned_column(streamed.cleaned, col.name)
-        stats.append(numeric_stats(np.asarray(values, dtype=np.float64)[~is_test], col))
+        # One column of training values at a time (8 bytes a row): the largest array a streamed run holds.
+        values = np.asarray(cleaned_column(streamed.cleaned, col.name), dtype=np.float64)[~is_test]
+        stats.append(numeric_stats(values, col))
         del values
     encoder = FeatureEncoder.from_stats(spec, vocabularies, stats, {c: sorted(v) for c, v in levels.items()})
 
