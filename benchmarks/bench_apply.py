@@ -3,7 +3,7 @@ bandwidth, and the apply job's peak memory on a file ten chunks long vs one chun
 
     python benchmarks/bench_apply.py            # 10,000,000 values of a 50,000-category column, 16-d vectors
     python benchmarks/bench_apply.py --quick    # a smoke run (1,000,000 values, smaller memory files)
-    python benchmarks/bench_apply.py --only throughput   # one part: ids, throughput or memory
+    python benchmarks/bench_apply.py --only throughput   # one part: ids, throughput, memory or files
 
 Targets (2 cores): the apply path >= 20,000,000 rows/s on string input and >= 15x the straightforward
 ``Series.map`` over a dict of lists; the apply job's peak memory on a 10-chunk file within 2x of one chunk's.
@@ -114,7 +114,7 @@ def string_to_id_options(values: np.ndarray, vocab: Vocabulary, lookup: ColumnLo
     print(f"\nstring -> id, {n:,} values ({len(known):,} categories, {UNSEEN_SHARE:.0%} unseen):")
     for name, call in options.items():
         seconds = best_of(repeats, call)
-        print(f"  {name:<55s} {n / seconds / 1e6:8.1f} M rows/s")
+        print(f"  {name:<55s} {n / seconds / 1e6:8.1f} M rows/s  ({load()})")
 
 
 def throughput(values: np.ndarray, vector_set: VectorSet, lookup: ColumnLookup, chunk_rows: int, repeats: int):
@@ -159,10 +159,11 @@ def throughput(values: np.ndarray, vector_set: VectorSet, lookup: ColumnLookup, 
     bytes_per_row = dim * 4
     bound = bandwidth / bytes_per_row
     print(f"\nvalues -> {dim}-d float32 vectors, {n:,} rows (no file I/O), {os.cpu_count()} cores:")
-    print(f"  {'apply path (dictionary chunks -> Arrow vector columns)':<55s} {n / apply_s / 1e6:8.1f} M rows/s")
-    print(f"  {'pandas path (object strings -> DataFrame)':<55s} {n / pandas_s / 1e6:8.1f} M rows/s")
-    print(f"  {'pandas path (pandas 3 str strings -> DataFrame)':<55s} {n / str_s / 1e6:8.1f} M rows/s")
-    print(f"  {'straightforward Series.map(dict of lists)':<55s} {n / naive_s / 1e6:8.1f} M rows/s")
+    print(f"  {'apply path (dictionary chunks -> Arrow vector columns)':<55s} {n / apply_s / 1e6:8.1f} M rows/s  "
+          f"({load()})")
+    print(f"  {'pandas path (object strings -> DataFrame)':<55s} {n / pandas_s / 1e6:8.1f} M rows/s  ({load()})")
+    print(f"  {'pandas path (pandas 3 str strings -> DataFrame)':<55s} {n / str_s / 1e6:8.1f} M rows/s  ({load()})")
+    print(f"  {'straightforward Series.map(dict of lists)':<55s} {n / naive_s / 1e6:8.1f} M rows/s  ({load()})")
     print(f"  {'memory-bandwidth bound':<55s} {bound / 1e6:8.1f} M rows/s"
           f"  (np.copyto {bandwidth / 1e9:.1f} GB/s / {bytes_per_row} bytes written per row)")
     print(f"  apply path / straightforward: {naive_s / apply_s:6.1f}x   (target >= 15x)")
@@ -238,11 +239,47 @@ def memory(vector_set: VectorSet, categories: int, chunk_rows: int) -> None:
                 peaks[chunks] = (stats["peak_kib"] - stats["base_kib"]) / 1024
                 print(f"  {fmt:<8s} {stats['rows']:>12,} rows in {stats['chunks']:>3} chunk(s): "
                       f"+{peaks[chunks]:7.0f} MiB peak, {path.stat().st_size / 2**20:7.0f} MiB file, "
-                      f"{stats['rows'] / stats['seconds'] / 1e6:5.2f} M rows/s with file I/O")
+                      f"{stats['rows'] / stats['seconds'] / 1e6:5.2f} M rows/s with file I/O  ({load()})")
                 path.unlink()
             ratio = peaks[10] / peaks[1]
             verdict = "met" if ratio <= 2 else "NOT met"
             print(f"  {fmt:<8s} 10-chunk file / one chunk: {ratio:.2f}x  (target <= 2x: {verdict})")
+
+
+def load() -> str:
+    """The machine's 1-minute load average, printed beside each figure (2 shared cores: above 2 is contention)."""
+    return f"load {os.getloadavg()[0]:.1f}"
+
+
+def files(vector_set: VectorSet, categories: int, rows: int, repeats: int) -> None:
+    """The whole job on a file, and what its newer duties cost inside it, side by side in one run: the CSV row
+    count that gives the progress a real total (one extra read of the file), and casting the category column
+    back from the dictionary it is read as to the text the input had."""
+    from entivec.tasks.apply.inputs import csv_rows
+
+    print(f"\nthe apply job on a file, {rows:,} rows, {categories:,} categories (best of {repeats}):")
+    with tempfile.TemporaryDirectory() as tmp:
+        for fmt in ("csv", "parquet"):
+            path = Path(tmp) / f"t.{fmt}"
+            write_table(path, rows, categories, fmt, seed=3)
+            out = Path(tmp) / "out.parquet"
+
+            def job(path=path, out=out):
+                apply_file(model_name="bench", version="1", run_id="bench", vector_set=vector_set,
+                           input_path=path, output_path=out, chunk_rows=1_000_000)
+
+            job_s = best_of(repeats, job)
+            print(f"  {fmt:<8s} whole job                      {job_s:7.3f} s  {rows / job_s / 1e6:6.2f} M rows/s  "
+                  f"({load()})")
+            if fmt == "csv":
+                count_s = best_of(repeats, lambda path=path: csv_rows(path))
+                print(f"  {fmt:<8s} row count for the total        {count_s:7.3f} s  "
+                      f"= {count_s / job_s:6.1%} of the job  ({load()})")
+            column = pq.read_table(out, columns=[COLUMN]).column(COLUMN)
+            encoded = pc.dictionary_encode(column)
+            cast_s = best_of(repeats, lambda encoded=encoded: [c.cast(pa.string()) for c in encoded.chunks])
+            print(f"  {fmt:<8s} category column back to text   {cast_s:7.3f} s  "
+                  f"= {cast_s / job_s:6.1%} of the job  ({load()})")
 
 
 def main() -> None:
@@ -252,7 +289,7 @@ def main() -> None:
     parser.add_argument("--categories", type=int, default=50_000)
     parser.add_argument("--dim", type=int, default=16)
     parser.add_argument("--chunk-rows", type=int, default=None, help="chunk size of the memory test")
-    parser.add_argument("--only", choices=("ids", "throughput", "memory"), help="run one part only")
+    parser.add_argument("--only", choices=("ids", "throughput", "memory", "files"), help="run one part only")
     parser.add_argument("--memory-child", nargs=3, metavar=("VECTORS", "SOURCE", "CHUNK"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.memory_child:
@@ -271,6 +308,8 @@ def main() -> None:
         throughput(values, vector_set, lookup, chunk_rows=1_000_000, repeats=repeats)
     if args.only in (None, "memory"):
         memory(vector_set, args.categories, chunk_rows)
+    if args.only in (None, "files"):
+        files(vector_set, args.categories, min(rows, 4_000_000), repeats)
 
 
 if __name__ == "__main__":

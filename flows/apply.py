@@ -21,6 +21,14 @@ def load_vectors(model_name: str, version: str) -> registry.LoadedVersion:
     return registry.load_version(model_name, version)
 
 
+def aliases_on(model_name: str, version: str, asked: str) -> list[str]:
+    """The aliases that point at ``version`` now (and the one the user named, if any)."""
+    on = {a for a, v in registry.aliases_of(model_name).items() if str(v) == str(version)}
+    if not str(asked).isdigit():
+        on.add(str(asked))
+    return sorted(on)
+
+
 @task(name="log-report", cache_policy=NO_CACHE)
 def log_report(result: ApplyResult) -> None:
     """The run's record names the version that produced the output, as the output's own metadata does.
@@ -49,8 +57,10 @@ def log_report(result: ApplyResult) -> None:
 
 def report_markdown(result: ApplyResult) -> str:
     lines = [
-        f"**{result.model_name}** version **{result.version}** (run `{result.run_id}`), "
-        f"unknown-category rule `{result.unknown}`",
+        f"**{result.model_name}** version **{result.version}** (run `{result.run_id}`"
+        + (f", aliases {', '.join(result.aliases)}" if result.aliases else "")
+        + f"), unknown-category rule `{result.unknown}`"
+        + (f", trained on data `{result.data_fingerprint[:12]}`" if result.data_fingerprint else ""),
         "",
         f"{result.input_path} -> {result.output_path}: {result.rows:,} rows in {result.chunks} chunk(s), "
         f"written {result.created_at}",
@@ -77,21 +87,25 @@ def apply(
     unknown: str = DEFAULT_UNKNOWN,
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     show_progress: bool = False,
+    max_unknown_share: float | None = None,
 ) -> ApplyResult:
     """Append the vectors of ``model_name`` at ``version`` (number or alias) to a table, written as Parquet.
 
-    ``columns`` limits the work to some of the vector set's columns (default: all, each must be present);
-    ``unknown`` is the unknown-category rule shared with the transformer and the served model.
+    ``input_path`` is a file, a glob or a partitioned folder. ``columns`` limits the work to some of the vector
+    set's columns (default: all, each must be present); ``unknown`` is the unknown-category rule shared with the
+    transformer and the served model; ``max_unknown_share`` fails the job, writing nothing, when any column's
+    share of rows that met that rule is above it.
     """
     check_unknown_rule(unknown)
     loaded = load_vectors(model_name, str(version))
+    aliases = aliases_on(model_name, loaded.version, str(version))
     bar = _progress_bar() if show_progress else None
     with bar or nullcontext():
         job = bar.add_task(f"{model_name} v{loaded.version}", total=None) if bar else None
         result = apply_file_task(
             model_name=model_name, version=loaded.version, run_id=loaded.run_id, vector_set=loaded.vector_set,
             input_path=input_path, output_path=output_path, columns=columns, unknown=unknown,
-            chunk_rows=chunk_rows,
+            chunk_rows=chunk_rows, max_unknown_share=max_unknown_share, aliases=aliases,
             progress=(lambda done, total: bar.update(job, completed=done, total=total or None)) if bar else None,
         )
     log_report(result)

@@ -297,7 +297,6 @@ def _judge_pair(
 
 
 def write_diff_html(diff: VersionDiff, out: str | Path) -> Path:
-    path = Path(out)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(diff.html(), encoding="utf-8")
-    return path
+    from entivec.tasks.apply.outputs import write_text_atomically
+
+    return write_text_atomically(out, diff.html(), "the diff report")

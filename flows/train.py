@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 import tempfile
 from dataclasses import dataclass
@@ -11,10 +12,13 @@ from prefect import flow, get_run_logger, task
 from prefect.transactions import transaction
 
 from entivec.schemas.spec import Spec, load_spec
+from entivec.schemas.vector_set import column_file_stem
 from entivec.settings import project_home
+from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
+from entivec.tasks.evidence.stability import seed_stability
 from entivec.tasks.ingest.clean import clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint as fingerprint_of
 from entivec.tasks.ingest.read import ingest
@@ -22,13 +26,15 @@ from entivec.tasks.ingest.split import split
 from entivec.tasks.lifecycle import audit, drift, outcomes, profile, registry
 from entivec.tasks.lifecycle import rows as held_rows
 from entivec.tasks.lifecycle.bundle import BundleInputs, write_bundle_task
-from entivec.tasks.lifecycle.track import record_run_task, register_version_task
-from entivec.tasks.present import plots, report
+from entivec.tasks.lifecycle.track import complete_version_task, record_run_task, register_version_task
+from entivec.tasks.present import plots, report, review
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import predict
 from entivec.tasks.train.trainer import train_vectors
 from entivec.tasks.train.vocabulary import build_vocabularies_task
+
+RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold networks use seed + 1 + fold)
 
 
 @dataclass
@@ -56,7 +62,13 @@ def check_ledger(cleaned) -> None:
     cleaned.ledger.check(rows_used=len(cleaned.frame), rows_quarantined=len(cleaned.quarantine))
 
 
-@task(name="earlier-version", retries=2, retry_delay_seconds=2)
+@task(name="check-store", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
+def check_store(name: str) -> str:
+    """The tracking store answers and takes writes: found out in seconds, before minutes of training."""
+    return registry.check_store(name)
+
+
+@task(name="earlier-version", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
 def earlier_version(name: str, version_or_alias: str) -> registry.LoadedVersion:
     return registry.load_version(name, version_or_alias)
 
@@ -70,6 +82,33 @@ def _no_new_data(spec: Spec, same, fingerprint: dict) -> TrainOutcome:
                f"nothing was trained (recorded in MLflow run {run_id})")
     return TrainOutcome(spec.name, str(same.version), run_id, fingerprint["rows"], used, fingerprint["rows"] - used,
                         tags.get("entivec.vectors_help") == "true", summary, status="no-new-data", note=summary)
+
+
+REPORT_TAG = "entivec.report"
+
+
+def publish_report_or_warn(name: str, version: str) -> str:
+    """Publish the version report and the review page; a failure is a recorded warning, never a failed run.
+
+    The version is complete and staged by then: its vectors, evidence and history do not depend on the HTML
+    report, which ``entivec report NAME VERSION`` can write again. A failure is logged as a warning, tagged on
+    the version (``entivec.report``) and kept as a ``report_failed`` history entry; the command exits 0.
+    """
+    try:
+        report.publish_version_report_task(name, version)
+        review.publish_review_page_task(name, version)
+        return ""
+    except Exception as exc:  # noqa: BLE001 - recorded below, with the way to redo it
+        cause = f"{type(exc).__name__}: {str(exc).strip().splitlines()[0] if str(exc).strip() else ''}"[:400]
+    warning = (f"warning: the report of {name} version {version} was not written ({cause}); the version is "
+               f"registered and staged; write it with `entivec report {name} {version}`")
+    get_run_logger().warning(warning)
+    try:
+        registry.client().set_model_version_tag(name, version, REPORT_TAG, f"failed: {cause}")
+        audit.record_note(name, version, event="report_failed", reason=warning)
+    except (registry.RegistryError, audit.AuditError) as exc:
+        warning += f" (and the warning could not be recorded: {exc})"
+    return warning
 
 
 @flow(name="train", validate_parameters=False)
@@ -94,6 +133,7 @@ def train(
     if warm_start and not (incremental or vocabulary_from):
         raise ValueError("warm_start needs a version to start from: incremental=True (production) or vocabulary_from")
     spec, spec_text = read_spec(spec_path)
+    check_store(spec.name)
     if source is not None:
         spec = drift.with_source(spec, source)
     raw, files = ingest(spec, spec_path)
@@ -140,20 +180,39 @@ def train(
         train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
         training=spec.training, task=spec.target.task, init_vectors=init_vectors,
     )
+    stability = {}
+    if spec.evaluation.seed_check:  # the same rows and start, another seed: what a reseed alone changes
+        reseeded = train_vectors.with_options(task_run_name="train-vectors-reseeded")(
+            train_inputs, y_train, columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes,
+            training=spec.training.model_copy(update={"seed": spec.training.seed + RESEED, "progress": False}),
+            task=spec.target.task, init_vectors=init_vectors,
+        )
+        stability = seed_stability(vocabularies, result.vectors, reseeded.vectors)
+        del reseeded
     network_pred = predict(result.model, test_inputs, spec.target.task)
     if spec.target.task == "regression":
         network_pred = targets.inverse(network_pred, spec.target.transform)
     network_metrics = task_metrics(spec.target.task, y_test, network_pred)
 
-    rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
-    subset = train_inputs.take(rows)
+    # Bounded evidence: the fold networks train on a seeded sample of at most evaluation.max_fold_rows rows, the
+    # downstream models on a seeded sample of that sample (max_train_rows) and are scored on a seeded sample of
+    # the test rows (max_test_rows); only the downstream rows' out-of-fold vectors are kept.
+    ev = spec.evaluation
+    fold_rows = capped_rows(len(train_rows), ev.max_fold_rows, ev.seed)
+    picked = capped_rows(len(fold_rows), ev.max_train_rows, ev.seed)
+    rows = fold_rows[picked]
+    tested = capped_rows(len(test_rows), ev.max_test_rows, ev.seed)
     # Folds are submitted from here, so a Dask task runner (flows.parallel) trains them in parallel.
-    oof = cross_fit_vectors(subset, y_train[rows], spec, cardinalities, sizes, result.vectors)
-    in_sample = vectors_for_ids(subset.cat_ids, result.vectors, spec.embed_names)
-    on_test = vectors_for_ids(test_inputs.cat_ids, result.vectors, spec.embed_names)
+    spread = FoldSpread()
+    oof = cross_fit_vectors(train_inputs.take(fold_rows), y_train[fold_rows], spec, cardinalities, sizes,
+                            result.vectors, spread=spread, keep=picked)
+    confidence = confidence_tables(spread, vocabularies, result.vectors)
+    in_sample = vectors_for_ids(train_inputs.cat_ids[rows], result.vectors, spec.embed_names)
+    on_test = vectors_for_ids(test_inputs.cat_ids[tested], result.vectors, spec.embed_names)
     evidence = evaluate_downstream(
-        train_rows.iloc[rows], test_rows, spec,
-        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred,
+        train_rows.iloc[rows], test_rows.iloc[tested], spec,
+        vectors_oof=oof, vectors_in_sample=in_sample, vectors_test=on_test, network_test_pred=network_pred[tested],
+        n_available=len(train_rows), n_test_available=len(test_rows),
     )
 
     project_home().mkdir(parents=True, exist_ok=True)
@@ -162,10 +221,11 @@ def train(
         bundle = BundleInputs(
             spec, spec_text, fingerprint, cleaned.ledger, cleaned.quarantine, vocabularies, encoder,
             result, evidence, network_metrics, y_test, network_pred,
-            profile=profile.data_profile_task(raw, train_rows, spec),
+            profile=profile.data_profile_task(raw, train_rows, spec), confidence=confidence,
         )
         vector_folder = write_bundle_task(bundle, workdir)
         plots.write_run_plots(bundle, workdir)
+        review.write_groups(raw, spec, workdir)  # colours of the review page's map (spec review.groups)
         if drift_report is not None:  # the check it passed travels with the run
             drift.write_report(drift_report, workdir / drift.REPORT_FOLDER)
         held_rows.write_train_ids(train_rows, spec, workdir / "data")  # lets a later gate judge only unseen rows
@@ -174,6 +234,10 @@ def train(
             for key, value in row.items():
                 if key in network_metrics:
                     metrics[f"{row['model']}_{row['features']}_{key}"] = value
+        for col, figures in stability.items():  # MLflow metrics per column, e.g. seed_neighbour_overlap.dest
+            metrics.update({f"{key}.{column_file_stem(col)}": value for key, value in figures.items()})
+        if stability:
+            (workdir / "evidence" / "seed_stability.json").write_text(json.dumps(stability, indent=1, default=float))
         if drift_report is not None:
             metrics["drift_max_psi"] = drift_report.largest("psi")
             metrics["drift_max_new_category_share"] = drift_report.largest("new_category_share")
@@ -192,6 +256,9 @@ def train(
             **({"entivec.incremental": "; ".join(notes)} if notes else {}),
             **{f"entivec.network_{k}": f"{v:.6g}" for k, v in network_metrics.items()},
         }
+        # Intent first: the version is created tagged "registering" and marked complete only after its alias
+        # and history entry are written. A failure in between deletes it again (rollback); a kill leaves it
+        # incomplete, refused by every command and settled by the next lifecycle command.
         with transaction():
             version = register_version_task(
                 spec=spec, run_id=run_id, vector_set_folder=vector_folder, version_tags=tags
@@ -201,9 +268,12 @@ def train(
                 reason=f"trained from {spec_path}" + "".join(f"; {n}" for n in notes),
                 data_fingerprint=fingerprint["sha256"], details={"run_id": run_id, "spec_hash": spec.content_hash()},
             )
+            complete_version_task(spec.name, version)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
-    report.publish_version_report_task(spec.name, version)
+    warning = publish_report_or_warn(spec.name, version)
+    if warning:
+        notes.append(warning)
 
     return TrainOutcome(
         spec.name, version, run_id, cleaned.ledger.rows_in, cleaned.ledger.rows_used,

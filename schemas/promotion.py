@@ -25,12 +25,12 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import Field, model_validator
 
+from entivec.schemas.strict import Strict
 
-class _Strict(BaseModel):
-    # The same policy as the rest of the spec: unknown keys are errors, values are frozen once read.
-    model_config = ConfigDict(extra="forbid", frozen=True)
+# The same policy as the rest of the spec: unknown keys, booleans for numbers and NaN are errors; frozen once read.
+_Strict = Strict
 
 
 class OrderExpectation(_Strict):

@@ -1,4 +1,8 @@
-"""The dataset spec: one YAML file describes a dataset, its cleaning rules and how to train and judge vectors."""
+"""The dataset spec: one YAML file describes a dataset, its cleaning rules and how to train and judge vectors.
+
+Longer than 500 lines because the spec is one pydantic model tree, and the code that turns its validation
+errors into messages naming file and key walks that same tree; split apart, each half would import the other.
+"""
 
 from __future__ import annotations
 
@@ -12,9 +16,11 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, Field, ValidationError, field_validator, model_validator
 
 from entivec.schemas.promotion import PromotionSpec
+from entivec.schemas.review import ReviewSpec
+from entivec.schemas.strict import BOOL_FOR_NUMBER, Strict
 
 SPEC_VERSION = 1
 ROW_ID = "_row_id"  # the id column entivec adds when the spec names none: the row number in read order, as text
@@ -25,8 +31,7 @@ class SpecError(ValueError):
     """A spec file that cannot be used; the message names the file, the key and what was expected."""
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+_Strict = Strict  # unknown keys, booleans for numbers and NaN are errors in every section (schemas/strict.py)
 
 
 # --- embedding sizes -------------------------------------------------------------------------------------------
@@ -73,7 +78,9 @@ class TargetSpec(_Strict):
 class EmbedColumn(_Strict):
     name: str
     size: Annotated[int, Field(ge=1, le=600)] | None = None
-    size_rule: SizeRule = "power_056"
+    # fourth_root: fastest and the lowest held-out loss across three seeds, geometry checks equal
+    # (benchmarks/bench_size_rule.py; README "Default vector size")
+    size_rule: SizeRule = "fourth_root"
     min_count: Annotated[int, Field(ge=1)] = 1
     nullable: bool = True
 
@@ -211,7 +218,10 @@ class SplitSpec(_Strict):
 
 
 class TrainingSpec(_Strict):
-    epochs: Annotated[int, Field(ge=1, le=10_000)] = 30
+    # None: an epoch budget from the table's size (see tasks/train/trainer.py: epoch_budget): at least 30 epochs and
+    # at least `step_budget` optimizer steps, so a small table trains until early stopping ends it.
+    epochs: Annotated[int, Field(ge=1, le=10_000)] | None = None
+    step_budget: Annotated[int, Field(ge=1)] = 6_000
     batch_size: Annotated[int, Field(ge=1)] = 1024
     learning_rate: Annotated[float, Field(gt=0, le=1)] = 3e-3
     weight_decay: Annotated[float, Field(ge=0)] = 0.0
@@ -227,13 +237,25 @@ class TrainingSpec(_Strict):
 
 
 class EvaluationSpec(_Strict):
-    folds: Annotated[int, Field(ge=2, le=20)] = 5
-    models: list[Literal["random_forest", "hist_gradient_boosting", "linear"]] = [
-        "random_forest",
+    # Defaults chosen by measurement (benchmarks/bench_evidence.py, README "What the evidence costs"): on a
+    # 1 M-row table the evaluation costs no more than the vector training. Three folds of a 150,000-row sample
+    # cost 300,000 network rows per epoch against 800,000 for five folds of 200,000; histogram gradient boosting
+    # fitted 20,000 rows in 1.5 s where a 100-tree random forest took 19-25 s with a worse RMSE; the linear
+    # model adds a second, cheap model family. Random forest stays available by name.
+    folds: Annotated[int, Field(ge=2, le=20)] = 3
+    models: Annotated[list[Literal["random_forest", "hist_gradient_boosting", "linear"]], Field(min_length=1)] = [
         "hist_gradient_boosting",
+        "linear",
     ]
     onehot_max_categories: Annotated[int, Field(ge=2)] = 64
-    max_train_rows: Annotated[int, Field(ge=100)] | None = 200_000
+    # Rows the downstream models train on (a seeded sample of the training rows) and are scored on (of the test
+    # rows), and rows the fold networks train on: caps, so the evidence stops growing with the table.
+    max_train_rows: Annotated[int, Field(ge=100)] | None = 20_000
+    max_test_rows: Annotated[int, Field(ge=100)] | None = 50_000
+    max_fold_rows: Annotated[int, Field(ge=100)] | None = 150_000
+    # Train a second network on the same rows with another seed and log how far the two agree per column
+    # (tasks/evidence/stability.py): how much of a version-to-version change a reseed alone makes.
+    seed_check: bool = True
     seed: int = 0
 
 
@@ -254,6 +276,19 @@ class DriftSpec(_Strict):
     ignore: list[str] = Field([], description="Columns reported but never a reason to stop.")
 
 
+class ShrinkSpec(_Strict):
+    """Shrink uncertain vectors at apply time (tasks/apply/lookup.py); recorded in each version, off by default.
+
+    A category's vector moves toward ``rule``'s target (the unknown row, or the count-weighted mean of the known
+    vectors) with weight r² / (r² + scale²), r its relative spread across the fold networks; above
+    ``replace_above`` (when set) it is replaced by the target.
+    """
+
+    rule: Literal["off", "toward_unknown", "toward_mean"] = "off"
+    scale: Annotated[float, Field(gt=0)] = 1.0
+    replace_above: Annotated[float, Field(gt=0)] | None = None
+
+
 class Spec(_Strict):
     """A whole dataset spec. ``name`` is the registered model that each trained vector set becomes a version of."""
 
@@ -269,7 +304,9 @@ class Spec(_Strict):
     training: TrainingSpec = TrainingSpec()
     evaluation: EvaluationSpec = EvaluationSpec()
     promotion: PromotionSpec = PromotionSpec()
+    shrink: ShrinkSpec = ShrinkSpec()
     drift: DriftSpec = DriftSpec()
+    review: ReviewSpec = ReviewSpec()
 
     @model_validator(mode="after")
     def _columns_consistent(self) -> Spec:
@@ -294,6 +331,9 @@ class Spec(_Strict):
         for name in self.drift.ignore:
             if name not in known:
                 raise ValueError(f"drift.ignore names column {name!r}, which the spec does not declare")
+        for name in self.review.groups:
+            if name not in self.embed_names:
+                raise ValueError(f"review.groups names column {name!r}, which is not in columns.embed")
         return self
 
     # convenience -----------------------------------------------------------------------------------------------
@@ -327,10 +367,10 @@ class Spec(_Strict):
     def content_hash(self) -> str:
         """SHA-256 of the spec's canonical JSON: what identifies the recipe of a vector set.
 
-        The ``drift`` section is left out: its thresholds decide whether a retrain runs, not what it makes, and
-        specs written before it existed keep their hash.
+        The ``drift`` and ``review`` sections are left out: the first decides whether a retrain runs, the second
+        what the review page shows, neither what a run makes; specs written before them keep their hash.
         """
-        recipe = _without_later_defaults(self.model_dump(mode="json", exclude={"drift"}))
+        recipe = _without_later_defaults(self.model_dump(mode="json", exclude={"drift", "review"}))
         canonical = json.dumps(recipe, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canonical.encode()).hexdigest()
 
@@ -420,11 +460,36 @@ def format_validation_error(error: ValidationError, path: Path) -> str:
             lines.append(f"  - unknown key '{key}'{hint}{allowed}")
         elif item["type"] == "missing":
             lines.append(f"  - missing required key '{key}'")
+        elif item["type"] == BOOL_FOR_NUMBER:
+            inner = item["ctx"]["key"]
+            full = inner if key == "(top level)" else f"{key}.{inner}"
+            lines.append(f"  - key '{full}': takes a number, got the boolean {item['ctx']['value']}")
         else:
             got = item.get("input")
             shown = repr(got) if not isinstance(got, dict) else "a mapping"
             lines.append(f"  - key '{key}': {item['msg']} (got {shown})")
     return "\n".join(lines)
+
+
+class _DuplicateKey(Exception):
+    pass
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """YAML's safe loader, except that a key written twice in one mapping is an error (YAML 1.2 says keys are
+    unique; PyYAML silently keeps the last one, so a repeated section would replace the first)."""
+
+    def construct_mapping(self, node, deep=False):
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=True)
+            line = key_node.start_mark.line + 1
+            if isinstance(key, typing.Hashable) and key in seen:
+                raise _DuplicateKey(f"key {key!r} appears twice in one mapping (lines {seen[key]} and {line}); "
+                                    "keep one")
+            if isinstance(key, typing.Hashable):
+                seen[key] = line
+        return super().construct_mapping(node, deep=deep)
 
 
 def load_spec(path: str | Path) -> Spec:
@@ -437,7 +502,9 @@ def load_spec(path: str | Path) -> Spec:
     except (OSError, UnicodeDecodeError) as exc:
         raise SpecError(f"spec file {path}: cannot be read ({exc})") from None
     try:
-        raw = yaml.safe_load(text)
+        raw = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader that refuses repeated keys
+    except _DuplicateKey as exc:
+        raise SpecError(f"spec file {path}: {exc}") from None
     except yaml.YAMLError as exc:
         raise SpecError(f"spec file {path}: not valid YAML ({exc})") from None
     if not isinstance(raw, dict):

@@ -40,6 +40,25 @@ def _register_support_module(name: str, filename: str) -> None:
 
 _register_support_module("entivec_test_vector_fixtures", "vector_fixtures.py")
 _register_support_module("entivec_test_lifecycle_support", "lifecycle_support.py")
+_register_support_module("entivec_test_browser_support", "browser_support.py")
+
+
+# What the markers in pyproject.toml promise, applied by what a test uses (checked by tests/test_markers.py):
+# a test that gets the Prefect test server runs real flows (integration); one that gets the team stack starts
+# real servers (services, and integration too).
+FLOW_FIXTURES = frozenset({"prefect_server"})
+SERVICE_FIXTURES = frozenset({"stack"})
+
+
+@pytest.hookimpl(tryfirst=True)  # before pytest's own -m selection runs
+def pytest_collection_modifyitems(config, items):
+    for item in items:
+        used = set(getattr(item, "fixturenames", ()))
+        if used & SERVICE_FIXTURES and item.get_closest_marker("services") is None:
+            item.add_marker(pytest.mark.services)
+        if (used & (FLOW_FIXTURES | SERVICE_FIXTURES) or item.get_closest_marker("services")) and \
+                item.get_closest_marker("integration") is None:
+            item.add_marker(pytest.mark.integration)
 
 
 @pytest.fixture(scope="session")

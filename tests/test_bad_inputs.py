@@ -287,7 +287,7 @@ def test_unreadable_times_and_numbers_quarantine_rows(tmp_path):
     assert result.quarantine.loc[1, "weight"] == "3 kg"
 
 
-# --- the same cases through the command line (wired by the lead once the CLI lands) ----------------------------
+# --- the same cases through the command line ------------------------------------------------------------------
 
 CLI_CASES = [c for c in CASES if c.error in (SpecError, InputError)]
 
@@ -299,11 +299,10 @@ def _squash(text: str) -> str:
 
 @pytest.mark.parametrize("case", CLI_CASES, ids=[c.name for c in CLI_CASES])
 def test_cli_level_failure(case: Case, tmp_path, request):
-    pytest.importorskip("entivec.cli")
     run_cli = request.getfixturevalue("run_cli")  # gives this test a fresh project folder: no version yet
     spec_path = case.build(tmp_path)
     code, output = run_cli(["train", str(spec_path)])
-    assert code != 0, f"{case.name}: exit code 0\n{output}"
+    assert code == 2, f"{case.name}: exit code {code}\n{output}"
     squashed = _squash(output)
     for fragment in case.fragments:
         assert _squash(fragment) in squashed, f"{case.name}: {fragment!r} not in output:\n{output}"

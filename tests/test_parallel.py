@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 from prefect import flow
 
-pytestmark = pytest.mark.integration
+# Tests given the Prefect test server are marked integration by tests/conftest.py; the others are unit tests.
 
 ROWS = 3_000
 # Flows defined here travel to Dask workers by value: the workers cannot import this test module by name.
@@ -145,8 +145,9 @@ def test_folds_on_a_local_dask_cluster_match_the_sequential_run(prefect_server, 
         assert np.isfinite(parallel[column]).all()
     # The workers reported to the session's Prefect server and started none of their own.
     assert len(servers) == 2 and set(servers.values()) == {0}
-    # The three folds ran on the workers, and both workers took part.
-    assert sum(executed.values()) == 3 and min(executed.values()) >= 1
+    # The three folds ran on the cluster's workers (none in this process). Which worker takes which fold is the
+    # scheduler's choice: on a loaded machine one worker can take all three before the other is ready.
+    assert len(executed) == 2 and sum(executed.values()) == 3
     # The downstream scores (scikit-learn models on the same held-out rows) are identical as well.
     pd.testing.assert_frame_equal(
         _downstream_scores(crossfit_case, parallel), _downstream_scores(crossfit_case, sequential)

@@ -45,14 +45,15 @@ def transformer_vectors(store, frame, version="1", unknown="unknown_row") -> pd.
     return enc.fit(frame).transform(frame)
 
 
-def test_lookup_model_by_alias_matches_the_transformer(store):
+def test_lookup_model_by_alias_matches_the_transformer(store, monkeypatch):
     import mlflow
     from mlflow.exceptions import MlflowException
 
     from entivec.tasks.apply.lookup import UNKNOWN_RULES
     from entivec.tasks.lifecycle import registry
 
-    registry.client()  # points MLflow's tracking and registry at the test store
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", registry.client().uri)
     model = mlflow.pyfunc.load_model(f"models:/{store.name}@production")
     signature = model.metadata.signature
     assert signature.inputs.input_names() == ["clarity", "color", "cut"]
@@ -155,3 +156,43 @@ def test_real_model_server_returns_the_same_vectors(store, served):
     colours = json.loads(frame[["color"]].to_json(orient="split", index=False))
     status, answer = _post(f"{served}/invocations", {"dataframe_split": colours, "params": {"unknown": "error"}})
     assert status == 400 and "column 'color': 1 of 200" in answer["message"] and "'Q'" in answer["message"]
+
+
+def test_registration_logs_an_input_example_and_the_spec_description(store, tmp_path):
+    """No 'input example was not provided' warning per registration (MLflow's own warning text), the example
+    runs through the loaded model, and the spec's description reaches the registered model and its version."""
+    import warnings
+
+    import mlflow
+
+    from entivec.schemas.spec import spec_from_dict
+    from entivec.tasks.lifecycle import registry
+    from entivec.tasks.lifecycle.track import register_version
+
+    name = "stones-described"
+    folder = store.v1.save(tmp_path / "vector_set")
+    c = registry.client()
+    run = c.create_run(registry.experiment_for(name), run_name="fixture with a description")
+    c.log_artifacts(run.info.run_id, str(folder), artifact_path=registry.VECTOR_SET_ARTIFACT)
+    c.set_terminated(run.info.run_id)
+    description = "Vectors of diamond cut, colour and clarity: per-category statistics of ggplot2's diamonds."
+    spec = spec_from_dict({
+        "name": name, "description": description, "source": {"path": "diamonds.csv"}, "id_column": "stone_id",
+        "target": {"column": "price", "task": "regression"},
+        "columns": {"embed": list(fx.STATS), "numeric": ["carat"]},
+    })
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        version = register_version(spec=spec, run_id=run.info.run_id, vector_set_folder=folder, version_tags={})
+    assert not [str(w.message) for w in caught if "input example" in str(w.message).lower()
+                or "range is deprecated" in str(w.message)]
+    assert c.get_registered_model(name).description == description
+    assert c.get_model_version(name, version).description == description
+    model = mlflow.pyfunc.load_model(f"models:/{name}/{version}")
+    example = model.input_example
+    assert list(example.columns) == ["clarity", "color", "cut"] and len(example) == 2
+    got = model.predict(example)
+    # outside check: each example colour's first component is its mean price among ggplot2's odd-numbered stones
+    odd = fx.half(store.frame, odd=True)
+    means = odd.groupby("color")["price"].mean()
+    np.testing.assert_array_equal(got["color__vec0"].to_numpy(), means[example["color"]].to_numpy(np.float32))

@@ -25,12 +25,14 @@ def write(tmp_path, data, name="spec.yaml"):
 
 
 def error_of(tmp_path, data) -> str:
+    """The error's message with the file's path cut out: the path holds the test's own name (pytest's tmp_path),
+    so a word checked in the raw message could match the path instead of the explanation."""
     path = write(tmp_path, data)
     with pytest.raises(SpecError) as info:
         load_spec(path)
     message = str(info.value)
     assert str(path) in message, message
-    return message
+    return message.replace(str(path), "<spec file>")
 
 
 def test_good_spec_loads_with_defaults(tmp_path):
@@ -91,17 +93,61 @@ def test_time_split_needs_column_and_cutoff(tmp_path):
 def test_not_yaml_not_mapping_and_missing_file(tmp_path):
     assert "not valid YAML" in error_of(tmp_path, "name: [unclosed\n")
     assert "expected a mapping" in error_of(tmp_path, "- a\n- b\n")
-    with pytest.raises(SpecError, match="not found"):
+    with pytest.raises(SpecError, match=r"absent\.yaml: not found"):
         load_spec(tmp_path / "absent.yaml")
 
 
 def test_bad_model_name(tmp_path):
-    assert "name" in error_of(tmp_path, {**GOOD, "name": "has space"})
+    message = error_of(tmp_path, {**GOOD, "name": "has space"})
+    assert "key 'name'" in message and "'has space'" in message, message
 
 
 def test_every_problem_is_reported_at_once(tmp_path):
     message = error_of(tmp_path, {**GOOD, "training": {"epochs": 0, "dropout": 2}, "extra": 1})
     assert "3 problem(s)" in message
+
+
+def test_repeated_key_is_an_error_naming_both_lines(tmp_path):
+    # YAML 1.2 (yaml.org/spec/1.2.2, section 3.2.1.1, quoted from memory): the content of a mapping node is an
+    # unordered set of key/value node pairs, "with the restriction that each of the keys is unique". PyYAML keeps
+    # the last one silently.
+    text = yaml.safe_dump(GOOD, sort_keys=False) + "training:\n  epochs: 3\ntraining:\n  epochs: 9\n"
+    message = error_of(tmp_path, text)
+    assert "key 'training' appears twice" in message and "lines 13 and 15" in message, message
+
+
+def test_repeated_nested_key_is_an_error(tmp_path):
+    text = yaml.safe_dump(GOOD, sort_keys=False).replace("  task: regression\n",
+                                                         "  task: regression\n  column: z\n")
+    assert "key 'column' appears twice" in error_of(tmp_path, text)
+
+
+@pytest.mark.parametrize(("section", "key"), [("training", "epochs"), ("training", "learning_rate"),
+                                              ("split", "test_fraction"), ("evaluation", "folds")])
+def test_boolean_where_a_number_belongs(tmp_path, section, key):
+    # YAML 1.1 (yaml.org/type/bool.html) reads true/yes/on as booleans; Python's bool is an int subclass, so
+    # without the check `epochs: true` became 1 epoch.
+    message = error_of(tmp_path, {**GOOD, section: {key: True}})
+    assert f"key '{section}.{key}': takes a number, got the boolean true" in message, message
+
+
+def test_boolean_where_a_boolean_belongs_still_loads(tmp_path):
+    spec = load_spec(write(tmp_path, {**GOOD, "training": {"progress": False}}))
+    assert spec.training.progress is False
+
+
+@pytest.mark.parametrize("bound", [".nan", ".inf", "-.inf"])
+def test_nan_or_infinite_bound_is_an_error(tmp_path, bound):
+    # YAML 1.1 float type (yaml.org/type/float.html) spells not-a-number `.nan` and infinity `.inf`; IEEE 754
+    # makes every comparison with NaN false, so a NaN bound would quarantine every row.
+    text = yaml.safe_dump(GOOD, sort_keys=False) + f"rules:\n  - kind: range\n    column: x\n    min: {bound}\n"
+    message = error_of(tmp_path, text)
+    assert "rules[0].min" in message and "finite number" in message, message
+
+
+def test_empty_model_list_is_an_error(tmp_path):
+    message = error_of(tmp_path, {**GOOD, "evaluation": {"models": []}})
+    assert "key 'evaluation.models'" in message and "at least 1 item" in message, message
 
 
 @pytest.mark.parametrize("n", [2, 7, 50, 2_000, 50_000])

@@ -21,7 +21,8 @@ import entivec_test_lifecycle_support as support  # registered by conftest.py
 import pytest
 import yaml
 
-pytestmark = [pytest.mark.integration, pytest.mark.services]
+# Markers: the tests that get the `stack` fixture are marked services and integration by tests/conftest.py;
+# the settings-file test starts nothing and carries neither.
 
 REPO = Path(__file__).resolve().parent.parent
 STACK = REPO / "infra" / "stack"
@@ -172,11 +173,20 @@ def cli(args: list[str]) -> tuple[int, str]:
     return result.exit_code, result.output
 
 
-def test_stack_is_up_on_postgres(stack):
+def test_stack_is_up_on_postgres(stack, empty_store):
+    import sqlite3
+
     code, services = stack.status()
     assert code == 0 and services == {"postgres": True, "mlflow": True, "prefect": True, "worker": True}
-    # Both servers keep their state in the stack's PostgreSQL (table names of MLflow's and Prefect's schemas).
-    assert stack.query("mlflow", "SELECT count(*) FROM information_schema.tables WHERE table_name = 'model_versions'")
+    # MLflow keeps its state in the stack's PostgreSQL: every table MLflow's own migrations create in an embedded
+    # SQLite store (the reference: MLflow's schema, made by MLflow itself) is in PostgreSQL's public schema too.
+    with sqlite3.connect(empty_store) as embedded:
+        expected = {name for (name,) in embedded.execute("SELECT name FROM sqlite_master WHERE type = 'table'")
+                    if not name.startswith("sqlite_")}
+    assert {"experiments", "runs", "registered_models", "model_versions"} <= expected  # MLflow's names, from memory
+    found = {name for (name,) in stack.query(
+        "mlflow", "SELECT table_name FROM information_schema.tables WHERE table_schema = 'public'")}
+    assert expected <= found, f"MLflow tables missing from PostgreSQL: {sorted(expected - found)}"
     assert stack.query("prefect", "SELECT name FROM work_pool WHERE name = %s", (stack.pool,)) == [(stack.pool,)]
 
 
@@ -288,6 +298,7 @@ def test_down_stops_every_server(stack):
             assert s.connect_ex(("127.0.0.1", port)) != 0
 
 
+@pytest.mark.services
 def test_down_stops_what_a_failed_up_started(tmp_path):
     """MLflow's port is taken: `up` fails naming it, PostgreSQL is left running, and `down` stops it."""
     _skip_without_postgres()

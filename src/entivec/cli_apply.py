@@ -20,7 +20,12 @@ def register(app: typer.Typer) -> None:
     def apply(
         name: Annotated[str, typer.Argument(help="Registered model name.")],
         input_path: Annotated[
-            Path, typer.Option("--input", help="CSV (.csv, .tsv, optionally .gz) or Parquet table.")
+            str,
+            typer.Option(
+                "--input",
+                help="CSV (.csv, .tsv, optionally .gz) or Parquet table: one file, a glob ('drops/*.csv', quoted) "
+                "or a folder (every data file below it; key=value folder names become columns).",
+            ),
         ],
         output_path: Annotated[
             Path, typer.Option("--output", help="Parquet file to write (replaced only on success).")
@@ -37,11 +42,20 @@ def register(app: typer.Typer) -> None:
             int, typer.Option(min=1, help="Rows read, looked up and written at a time; bounds the memory used.")
         ] = 1_000_000,
         progress: Annotated[bool, typer.Option(help="Show a progress bar.")] = True,
+        max_unknown_share: Annotated[
+            float | None,
+            typer.Option(
+                min=0.0, max=1.0,
+                help="Fail (exit 2, nothing written) when any column's share of unknown rows (unseen, too rare "
+                "or missing) is above this, e.g. 0.05.",
+            ),
+        ] = None,
     ) -> None:
         """Append a registered version's vectors to every row of a table and write it as Parquet.
 
-        The output's Parquet metadata records the model name, version, run id, the unknown-category rule
-        and the time; a failure leaves no output file behind.
+        The output's Parquet metadata records the model name, version, run id, aliases, data fingerprint, the
+        unknown-category rule and the time; input columns keep their types; a failure leaves no output file
+        behind.
         """
         from rich.table import Table
 
@@ -57,8 +71,8 @@ def register(app: typer.Typer) -> None:
         which = str(version) if version is not None else (alias or "production")
         result = _run(
             lambda: apply_flow(
-                name, str(input_path), str(output_path), version=which, columns=chosen, unknown=unknown,
-                chunk_rows=chunk_rows, show_progress=progress,
+                name, input_path, str(output_path), version=which, columns=chosen, unknown=unknown,
+                chunk_rows=chunk_rows, show_progress=progress, max_unknown_share=max_unknown_share,
             )
         )
         table = Table(title=f"{name} version {result.version} -> {result.output_path}")

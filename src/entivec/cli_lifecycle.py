@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from enum import StrEnum
 from pathlib import Path
 from typing import Annotated
 
@@ -11,13 +10,9 @@ from rich.markup import escape
 from rich.table import Table
 from rich.text import Text
 
+from entivec.cli_output import FORMAT_HELP, Format
+
 EXIT_REFUSED = 1  # the gate said no: not an input error, but not a success either
-
-
-class HistoryFormat(StrEnum):
-    table = "table"
-    csv = "csv"
-    json = "json"
 
 
 def _base():
@@ -112,47 +107,96 @@ def rollback(
     )
 
 
+def _move_text(row) -> str:
+    """What an entry did, in words: a refusal reads as a refusal, never as a move."""
+    if row.event == "refused":
+        stays = f"version {row.from_version}" if row.from_version else "no version"
+        return f"refused version {row.to_version or '?'}; {row.alias} stays at {stays}"
+    return f"{row.event.replace('_', ' ')}: {row.alias} {row.from_version or '–'} → {row.to_version or '–'}"
+
+
 def history(
     name: Annotated[str, typer.Argument(help="Registered model name.")],
-    fmt: Annotated[HistoryFormat, typer.Option("--format", help="table, csv or json.")] = HistoryFormat.table,
+    fmt: Annotated[Format, typer.Option("--format", help=FORMAT_HELP)] = Format.table,
     out: Annotated[Path | None, typer.Option("--out", help="Write to this file instead of the terminal.")] = None,
 ) -> None:
     """Every alias move of a model: when, who, why, from which version to which, the gate's verdict and figures."""
+    import pandas as pd
+
+    from entivec.cli_output import figure_value, table, to_csv, to_json
     from entivec.tasks.lifecycle import audit
 
     cli = _base()
     entries = cli._run(lambda: audit.history(name))
     frame = audit.history_frame(entries)
-    if fmt is HistoryFormat.table and out is None:
-        # One block per entry rather than a wide table: it stays readable in a narrow terminal.
-        cli.console.print(f"[bold]history of {name}[/] ({len(entries)} entries, oldest first)", soft_wrap=True)
-        colour = {"pass": "green", "fail": "red", "forced": "yellow"}
-        for row in frame.itertuples(index=False):
-            when = row.at.replace("T", " ").removesuffix("+00:00")
-            verdict = f"[{colour.get(row.verdict, 'default')}]{row.verdict}[/]"
-            state = "" if row.state == "done" else f"  [yellow]({row.state}: {escape(row.state_note)})[/]"
-            cli.console.print(
-                f"[bold]#{row.seq}[/] {when}  [bold]{row.event}[/]  {row.alias}: "
-                f"{row.from_version or '–'} → {row.to_version or '–'}  by {escape(row.by)}  verdict {verdict}{state}",
-                soft_wrap=True, highlight=False,
-            )
-            for label, value in (("reason", row.reason), ("figures", row.figures),
-                                 ("data", row.data_fingerprint), ("evidence", row.evidence_run)):
-                if value:
-                    cli.console.print(f"    {label}: {value}", soft_wrap=True, highlight=False, markup=False)
-        return
-    if fmt is HistoryFormat.json:
-        text = audit.history_json(entries)
-    elif fmt is HistoryFormat.csv:
-        text = frame.to_csv(index=False)
-    else:
+    if fmt is Format.table:
+        shown = pd.DataFrame({
+            "#": frame["seq"], "when (UTC)": frame["at"].str.replace("T", " ").str.slice(0, 16),
+            "what": [_move_text(r) for r in frame.itertuples()], "verdict": frame["verdict"],
+            "by": frame["by"].str.slice(0, 12),
+            "why": [r.reason + (f" [{r.state}: {r.state_note}]" if r.state != "done" else "")
+                    for r in frame.itertuples()],
+        })
+        rendered = table(shown, title=f"history of {name} ({len(entries)} entries, oldest first)",
+                         wrap=("what", "why"), styles={"verdict": {"pass": "green", "fail": "bold red",
+                                                                   "forced": "yellow"}})
+        if out is None:
+            cli.console.print(rendered)
+            figures = [(r.seq, r.figures) for r in frame.itertuples() if r.figures]
+            for seq, text in figures:
+                cli.console.print(f"  #{seq} figures: {text}", soft_wrap=True, highlight=False, markup=False)
+            return
         text = frame.to_string(index=False)
+    elif fmt is Format.json:
+        records = []
+        for entry in entries:
+            record = entry.to_record()
+            details = dict(record.get("details") or {})
+            if "figures" in details:  # "+4.10% [+2.95%, +5.20%]" becomes {"value": 0.041, "low": ..., "high": ...}
+                details["figures"] = {k: figure_value(v) for k, v in (details["figures"] or {}).items()}
+            record["details"] = details
+            record["moved"] = entry.moved
+            records.append(record)
+        text = to_json(records)
+    else:  # reasons are typed by people: no live formulas in a spreadsheet (OWASP CSV injection)
+        from entivec.tasks.apply.export import spreadsheet_safe
+
+        text = to_csv(spreadsheet_safe(frame))
     if out is None:
         typer.echo(text, nl=not text.endswith("\n"))
     else:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
+        from entivec.tasks.apply.outputs import write_text_atomically
+
+        cli._run(lambda: write_text_atomically(out, text, "the history"))
         cli.console.print(f"wrote {len(entries)} history entries to {out}")
+
+
+def _unchanged(result) -> bool:
+    """Two versions with the same vectors up to rotation: same categories, same sizes, no drift."""
+    if result.older == result.newer:
+        return True
+    return bool(result.comparisons) and all(
+        not comp.added and not comp.dropped and comp.dimension_older == comp.dimension_newer
+        and comp.drift == comp.drift and comp.drift < 1e-9 for comp in result.comparisons.values())
+
+
+def _diff_records(result, unchanged: bool) -> dict:
+    a, b = f"v{result.older}", f"v{result.newer}"
+    columns = []
+    for comp in result.comparisons.values():
+        movers = comp.movers.head(20)
+        columns.append({
+            "column": comp.column, "categories_a": comp.categories_older, "categories_b": comp.categories_newer,
+            "added": list(comp.added), "dropped": list(comp.dropped), "dimension_a": comp.dimension_older,
+            "dimension_b": comp.dimension_newer, "drift": comp.drift, "neighbours": comp.neighbours,
+            "neighbour_overlap": comp.neighbour_overlap, "chance_overlap": comp.chance_overlap,
+            "top_movers": [{"category": c, "drift": d} for c, d in zip(movers["category"], movers["drift"],
+                                                                         strict=True)],
+        })
+    metrics = [{"metric": row["metric"], "a": row[a], "b": row[b]} for row in result.metrics.to_dict("records")]
+    judged = result.judged.to_dict("records") if result.judged is not None else None
+    return {"name": result.name, "a": result.older, "b": result.newer, "no_change": unchanged,
+            "same_rows": judged, "columns": columns, "train_run_metrics": metrics, "notes": list(result.notes)}
 
 
 def diff(
@@ -164,57 +208,86 @@ def diff(
         Path | None, typer.Option("--spec", help="Judge both on the same held-out rows of this spec's data.")
     ] = None,
     neighbours: Annotated[int, typer.Option(min=1, max=100, help="k of the neighbour overlap.")] = 10,
+    fmt: Annotated[Format, typer.Option("--format", help=FORMAT_HELP)] = Format.table,
 ) -> None:
-    """Compare two versions: vocabulary changes, aligned drift, neighbour overlap, top movers, downstream metrics."""
+    """Compare two versions: vocabulary changes, aligned drift, neighbour overlap, top movers, downstream metrics.
+
+    Headers follow the arguments: A first, then B (B aligned onto A). With --spec, the comparison of both on the
+    same held-out rows comes first: it is the fair one.
+    """
+    import pandas as pd
+
+    from entivec.cli_output import emit, table, to_json
     from entivec.flows.lifecycle import diff_versions, write_diff_html
 
     cli = _base()
     result = cli._run(lambda: diff_versions(name, a, b, spec_path=str(spec) if spec else None,
                                             neighbours=neighbours))
-    cli.console.print(f"[bold]{name}: version {result.older} → version {result.newer}[/] "
-                      "(newer aligned onto older by orthogonal Procrustes on the shared categories)", soft_wrap=True)
-    table = Table(title="per column")
-    for column in ("column", "categories", "added", "dropped", "dims", "drift", "overlap (chance)"):
-        table.add_column(column, no_wrap=column != "column")
-    for comp in result.comparisons.values():
-        table.add_row(
-            Text(comp.column), f"{comp.categories_older} → {comp.categories_newer}", str(len(comp.added)),
-            str(len(comp.dropped)), f"{comp.dimension_older} → {comp.dimension_newer}", f"{comp.drift:.3f}",
-            f"{comp.neighbour_overlap:.2f} ({comp.chance_overlap:.2f}, k={comp.neighbours})",
-        )
-    cli.console.print(table)
-    for comp in result.comparisons.values():
-        top = ", ".join(f"{c} {d:.2f}" for c, d in zip(comp.movers["category"].head(8), comp.movers["drift"].head(8),
-                                                        strict=True) if d == d)
-        lines = [f"[bold]{escape(comp.column)}[/] top movers: {escape(top) or 'none'}"]
-        if comp.added:
-            lines.append(f"    added: {escape(', '.join(comp.added[:20]))}{' …' if len(comp.added) > 20 else ''}")
-        if comp.dropped:
-            lines.append(f"    dropped: {escape(', '.join(comp.dropped[:20]))}{' …' if len(comp.dropped) > 20 else ''}")
-        for line in lines:
-            cli.console.print(line, soft_wrap=True, highlight=False)
-    if result.metrics.empty:
-        cli.console.print("(the train runs of these versions recorded no downstream metrics)", style="dim")
-    metrics = Table(title="downstream metrics of the train runs, side by side")
-    for column in result.metrics.columns:
-        metrics.add_column(str(column))
-    for row in result.metrics.itertuples(index=False):
-        metrics.add_row(*[f"{v:.6g}" if isinstance(v, float) else str(v) for v in row])
-    if not result.metrics.empty:
-        cli.console.print(metrics)
-    if result.judged is not None:
-        judged = Table(title="both judged on the same held-out rows")
-        shown = [c for c in result.judged.columns if c not in ("model", "mse", "mean_loss")]
-        for column in shown:
-            judged.add_column(str(column))
-        for row in result.judged[shown].itertuples(index=False):
-            judged.add_row(*[f"{v:.6g}" if isinstance(v, float) else str(v) for v in row])
-        cli.console.print(judged)
-    for note in result.notes:
-        cli.console.print(note, highlight=False, style="dim", soft_wrap=True)
+    unchanged = _unchanged(result)
+    if fmt is Format.json:
+        typer.echo(to_json(_diff_records(result, unchanged)))
+    elif fmt is Format.csv:
+        emit(pd.DataFrame([{k: v for k, v in c.items() if k != "top_movers"}
+                           for c in _diff_records(result, unchanged)["columns"]]), fmt, cli.console)
+    else:
+        _print_diff(cli, result, unchanged, a, b, table)
     if html is not None:
         path = cli._run(lambda: write_diff_html(result, html))
         cli.console.print(f"HTML report written to {path}")
+
+
+def _print_diff(cli, result, unchanged: bool, a: str, b: str, table) -> None:
+    import pandas as pd
+
+    va, vb = f"version {result.older}", f"version {result.newer}"
+    cli.console.print(f"[bold]{escape(result.name)}: A = {escape(a)} ({va}), B = {escape(b)} ({vb})[/]",
+                      soft_wrap=True, highlight=False)
+    if unchanged:
+        same = "the same version" if result.older == result.newer else "the same vectors (up to rotation)"
+        cli.console.print(f"[bold]no change[/]: A and B are {same}; no category added or dropped, no drift",
+                          soft_wrap=True, highlight=False)
+    if result.judged is not None:  # the fair comparison first: both on the same held-out rows
+        shown = [c for c in result.judged.columns if c not in ("model", "mse", "mean_loss")]
+        cli.console.print(table(_rounded(result.judged[shown]), title="A and B judged on the same held-out rows"))
+    if not unchanged:
+        rows = pd.DataFrame([{
+            "column": comp.column, "categories A→B": f"{comp.categories_older} → {comp.categories_newer}",
+            "added": len(comp.added), "dropped": len(comp.dropped),
+            "dims A→B": f"{comp.dimension_older} → {comp.dimension_newer}",
+            "drift": "" if comp.drift != comp.drift else f"{comp.drift:.3f}",
+            "overlap (chance)": "" if comp.neighbour_overlap != comp.neighbour_overlap else
+            f"{comp.neighbour_overlap:.2f} ({comp.chance_overlap:.2f})",
+        } for comp in result.comparisons.values()])
+        cli.console.print(table(rows, title="per column (B aligned onto A)", wrap=("column",)))
+        for comp in result.comparisons.values():
+            top = ", ".join(f"{c} {d:.2f}" for c, d in zip(comp.movers["category"].head(8),
+                                                             comp.movers["drift"].head(8), strict=True) if d == d)
+            lines = [f"[bold]{escape(comp.column)}[/] top movers: {escape(top) or 'none'}"]
+            for label, values in (("added in B", comp.added), ("dropped from A", comp.dropped)):
+                if values:
+                    more = " …" if len(values) > 20 else ""
+                    lines.append(f"    {label}: {escape(', '.join(values[:20]))}{more}")
+            for line in lines:
+                cli.console.print(line, soft_wrap=True, highlight=False)
+    if result.metrics.empty:
+        cli.console.print("(the train runs of these versions recorded no downstream metrics)", style="dim")
+    else:
+        metrics = result.metrics.rename(columns={f"v{result.older}": f"A (v{result.older})",
+                                                 f"v{result.newer}": f"B (v{result.newer})"})
+        if result.older == result.newer:
+            metrics = result.metrics.rename(columns={f"v{result.older}": f"A = B (v{result.older})"})
+        cli.console.print(table(_rounded(metrics), title="train-run metrics (each on its own held-out rows)",
+                                wrap=("metric",)))
+    for note in result.notes:
+        cli.console.print(note, highlight=False, style="dim", soft_wrap=True)
+
+
+def _rounded(frame):
+    shown = frame.copy()
+    for column in shown.columns:
+        if shown[column].dtype.kind == "f":
+            shown[column] = shown[column].map(lambda v: "" if v != v else f"{v:.6g}")
+    return shown
 
 
 def report(
@@ -223,10 +296,11 @@ def report(
     out: Annotated[Path | None, typer.Option("--out", help="Where to write the HTML file.")] = None,
 ) -> None:
     """Write a version's HTML report (train run plots, gate evidence, alias moves) and log it to MLflow."""
-    from entivec.flows.lifecycle import version_report
+    from entivec.tasks.present import report as reports
 
     cli = _base()
-    published = cli._run(lambda: version_report(name, version, str(out) if out else None))
+    # A plain call, not a flow: reading a finished version needs no Prefect server.
+    published = cli._run(lambda: reports.publish_version_report(name, version, str(out) if out else None))
     cli.console.print(f"report written to {published.path}\nlogged to MLflow: {published.artifact_uri}",
                       soft_wrap=True)
 

@@ -91,7 +91,11 @@ def load_settings() -> Path | None:
 
 
 def apply_environment_defaults() -> None:
-    """Load the team settings file, then set (never override) what keeps the embedded services local and quiet."""
+    """Load the team settings file, then set (never override) what keeps the embedded services local and quiet.
+
+    Called by the `entivec` command as it starts, never on import: importing a module must leave the process
+    as it was. Prefect reads its settings when it is first imported, so a script calls this before that.
+    """
     load_settings()
     home = project_home()
     defaults = {

@@ -1,37 +1,46 @@
 """Batch apply steps: read a table in bounded chunks, append vector columns, write Parquet all-or-nothing.
 
-Memory stays bounded by the chunk size whatever the input size: the input is read ``chunk_rows`` rows at a
-time (Parquet batch by batch, CSV block by block), each chunk's vectors are gathered, written as one Parquet
-row group and dropped. Category columns are read dictionary-encoded (a CSV's always as text, never guessed as
-numbers), so each distinct category of a chunk is looked up once and the rows only index the result; they are
-written back dictionary-encoded, every other input column unchanged, followed by one float32 column per vector
-component (``<column>__vec<i>``).
+Memory stays bounded by the chunk size whatever the input size: the input (one file, a glob or a partitioned
+folder, see ``inputs``) is read ``chunk_rows`` rows at a time (Parquet batch by batch, CSV block by block),
+each chunk's vectors are gathered, written as one Parquet row group and dropped. Category columns are read
+dictionary-encoded (a CSV's always as text, never guessed as numbers), so each distinct category of a chunk is
+looked up once and the rows only index the result. Input columns keep their types: category columns are
+written back as the text they were (not dictionary-encoded), a CSV's dates and times stay the text they were
+(the job never guesses dates), other columns as read; then one float32 column per vector component
+(``<column>__vec<i>``).
 
-The output goes to a hidden temporary file beside the target and is renamed into place only after the last
-chunk: a failure at any point (bad column, unreadable row, an unknown category under the ``error`` rule)
-leaves no partial output. The Parquet key-value metadata records the model name, version, run id, the
-unknown-category rule, the input file and the time of writing.
+The output goes to a hidden temporary file beside the target (mode per the umask) and is renamed into place
+only after the last chunk: a failure at any point (bad column, unreadable row, an unknown category under the
+``error`` rule, an unseen share above ``max_unknown_share``, a full disk) leaves no partial output. The
+Parquet key-value metadata records the model name, version, run id, the aliases at the time, the data
+fingerprint of the version, the unknown-category rule, the input files and the time of writing.
 """
 
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.vector_set import VectorSet
+from entivec.tasks.apply.inputs import (  # noqa: F401  (input_format, open_input: this module's API before)
+    DEFAULT_CHUNK_ROWS,
+    ApplyInputError,
+    InputTable,
+    input_format,
+    open_input,
+    open_inputs,
+    read_chunks,
+)
 from entivec.tasks.apply.lookup import (
     CategoryTypeError,
     ColumnLookup,
@@ -41,31 +50,13 @@ from entivec.tasks.apply.lookup import (
     category_type_problem,
     prepare,
 )
-from entivec.tasks.ingest.read import InputError
+from entivec.tasks.apply.outputs import OutputError, OutputSet, output_error, writing_failed
 
-DEFAULT_CHUNK_ROWS = 1_000_000
 METADATA_PREFIX = "entivec."
-_CSV_SUFFIXES = {".csv": ",", ".tsv": "\t", ".txt": ","}
-_PARQUET_SUFFIXES = {".parquet", ".pq", ".parq"}
-_SAMPLE_BYTES = 1 << 20
-_CATEGORY_TYPE = pa.dictionary(pa.int32(), pa.string())
 
 
-class ApplyInputError(InputError):
-    """An input table the apply job cannot use; the message names the file and, where it applies, the column."""
-
-
-@dataclass
-class InputTable:
-    """What the apply job knows about its input before reading any row."""
-
-    path: Path
-    format: str  # "csv" or "parquet"
-    schema: pa.Schema  # as chunks will arrive: category columns dictionary-encoded
-    rows: int | None  # known up front for Parquet
-    size_bytes: int
-    delimiter: str = ","
-    block_size: int = 0  # CSV bytes read at a time, sized for the chunk rows
+class UnknownShareError(ApplyInputError):
+    """A column's share of rows that met the unknown-category rule passed ``max_unknown_share``."""
 
 
 @dataclass
@@ -80,6 +71,9 @@ class ApplyResult:
     unknown: str
     columns: list[str]
     created_at: str
+    aliases: list[str] = field(default_factory=list)
+    data_fingerprint: str = ""
+    input_files: list[str] = field(default_factory=list)
     rows: int = 0
     chunks: int = 0
     largest_chunk: int = 0
@@ -88,99 +82,6 @@ class ApplyResult:
 
     def report_rows(self) -> list[dict]:
         return [self.reports[c].as_dict() for c in self.columns]
-
-
-# --- the input ----------------------------------------------------------------------------------------------
-
-
-def input_format(path: Path) -> tuple[str, str]:
-    """('parquet' | 'csv', delimiter) from the file name; '.gz' and the like are read through."""
-    suffixes = [s.lower() for s in path.suffixes]
-    core = suffixes[-2] if len(suffixes) >= 2 and suffixes[-1] in {".gz", ".bz2", ".zst", ".lz4"} else (
-        suffixes[-1] if suffixes else ""
-    )
-    if core in _PARQUET_SUFFIXES:
-        return "parquet", ","
-    if core in _CSV_SUFFIXES:
-        return "csv", _CSV_SUFFIXES[core]
-    raise ApplyInputError(
-        f"{path}: cannot tell the format from the name; use a .parquet, .csv or .tsv file (optionally .gz)"
-    )
-
-
-def open_input(path: str | Path, category_columns: list[str], chunk_rows: int = DEFAULT_CHUNK_ROWS) -> InputTable:
-    """Read the input's schema (no rows), with the wanted category columns as they will arrive.
-
-    A CSV's column types are inferred from its first block, the same block the chunks will start with.
-    """
-    path = Path(path)
-    if not path.is_file():
-        raise ApplyInputError(f"{path}: no such file")
-    fmt, delimiter = input_format(path)
-    size = path.stat().st_size
-    try:
-        if fmt == "parquet":
-            parquet = pq.ParquetFile(path)
-            text = _text_columns(parquet.schema_arrow, category_columns)
-            schema = pq.ParquetFile(path, read_dictionary=text).schema_arrow
-            return InputTable(path, fmt, schema, parquet.metadata.num_rows, size)
-        block = _csv_block_size(path, chunk_rows)
-        schema = _csv_schema(path, delimiter, category_columns, block)
-        return InputTable(path, fmt, schema, None, size, delimiter, block)
-    except ApplyInputError:
-        raise
-    except (pa.ArrowException, OSError, ValueError) as exc:
-        raise ApplyInputError(f"{path}: not readable as {fmt} ({exc})") from None
-
-
-def _text_columns(schema: pa.Schema, wanted: list[str]) -> list[str]:
-    """Columns to read dictionary-encoded: the wanted ones stored as text."""
-    return [c for c in wanted if c in schema.names and arrow_kind(schema.field(c).type) == "text"]
-
-
-def _csv_blocks(path: Path, block_size: int) -> Iterator[bytes]:
-    """The file's text in blocks of about ``block_size`` bytes, each ending at a line end.
-
-    Read here rather than by Arrow's streaming reader, whose background read-ahead holds up to 32 blocks:
-    on a large file that is many chunks' worth of text in memory at once. Like Arrow's reader with its default
-    options, a line end always ends a row (no line breaks inside quoted values).
-    """
-    pending = b""
-    with pa.input_stream(str(path), compression="detect") as source:
-        while True:
-            data = source.read(block_size)
-            if not data:
-                break
-            text = pending + data if pending else data
-            cut = text.rfind(b"\n") + 1
-            if cut == 0:
-                pending = text
-                continue
-            pending = text[cut:]
-            yield text[:cut]
-    if pending.strip():
-        yield pending + b"\n"
-
-
-def _parse_csv(block: bytes, delimiter: str, column_types: dict, names: list[str] | None) -> pa.Table:
-    return pacsv.read_csv(
-        pa.BufferReader(block),
-        # two pieces parse in parallel on two cores; the caller joins them into one batch
-        read_options=pacsv.ReadOptions(column_names=names, block_size=max(len(block) // 2 + 1, 1 << 20)),
-        parse_options=pacsv.ParseOptions(delimiter=delimiter),
-        # pandas' missing markers ('', 'NA', 'null', ...), as ingestion reads them, also in text columns
-        convert_options=pacsv.ConvertOptions(column_types=column_types, strings_can_be_null=True),
-    )
-
-
-def _csv_schema(path: Path, delimiter: str, category_columns: list[str], block_size: int) -> pa.Schema:
-    """Column types from the first block (category columns as dictionary-encoded text, always)."""
-    first = next(_csv_blocks(path, block_size), None)
-    if first is None:
-        raise ApplyInputError(f"{path}: the file is empty (no header, no rows)")
-    schema = _parse_csv(first, delimiter, {c: _CATEGORY_TYPE for c in category_columns}, None).schema
-    # a column empty throughout the first block has no type yet: text is the one that takes any later value
-    return pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f for f in schema])
 
 
 def choose_columns(table: InputTable, vector_set: VectorSet, columns: list[str] | None) -> list[str]:
@@ -218,33 +119,6 @@ def check_input(table: InputTable, lookups: dict[str, ColumnLookup]) -> None:
             )
 
 
-def read_chunks(table: InputTable, category_columns: list[str], chunk_rows: int) -> Iterator[pa.RecordBatch]:
-    """The input as record batches of at most ``chunk_rows`` rows, category columns dictionary-encoded."""
-    if table.format == "parquet":
-        parquet = pq.ParquetFile(table.path, read_dictionary=_text_columns(table.schema, category_columns))
-        try:
-            yield from parquet.iter_batches(batch_size=chunk_rows, use_threads=True)
-        finally:
-            parquet.close()
-        return
-    types = {f.name: f.type for f in table.schema}
-    for i, block in enumerate(_csv_blocks(table.path, table.block_size)):
-        parsed = _parse_csv(block, table.delimiter, types, None if i == 0 else table.schema.names)
-        del block
-        # a block may hold more rows than estimated: slices of one joined batch, at most chunk_rows each
-        yield from parsed.combine_chunks().to_batches(max_chunksize=chunk_rows)
-
-
-def _csv_block_size(path: Path, chunk_rows: int) -> int:
-    """Bytes of CSV text that hold about ``chunk_rows`` rows, estimated from the file's first megabyte."""
-    with pa.input_stream(str(path), compression="detect") as source:
-        sample = source.read(_SAMPLE_BYTES)
-    lines = max(sample.count(b"\n"), 1)
-    per_row = max(len(sample) / lines, 1.0)
-    # aim a little under the chunk size, so that a block rarely spills a sliver of rows into a chunk of its own
-    return int(min(max(0.95 * per_row * chunk_rows, 1 << 16), 1 << 30))
-
-
 # --- the work on one chunk ----------------------------------------------------------------------------------
 
 
@@ -271,9 +145,18 @@ def append_vectors(
     lookups: dict[str, ColumnLookup],
     source: str = "",
     buffers: ChunkBuffers | None = None,
+    stored: dict[str, pa.DataType] | None = None,
 ) -> tuple[pa.RecordBatch, dict[str, ColumnReport]]:
-    """The batch with every lookup column's vector components appended (float32), and what each column met."""
+    """The batch with every lookup column's vector components appended (float32), and what each column met.
+
+    ``stored`` gives category columns back the type the input stores them as (read dictionary-encoded for the
+    lookup, written as the text they were).
+    """
     arrays, names, reports = list(batch.columns), list(batch.schema.names), {}
+    for col, to_type in (stored or {}).items():
+        i = names.index(col)
+        if arrays[i].type != to_type:
+            arrays[i] = arrays[i].cast(to_type)
     for col, lookup in lookups.items():
         out = buffers.take(col, lookup.dimension, batch.num_rows) if buffers is not None else None
         # (dimension, rows), each component contiguous: Arrow takes them as they are
@@ -284,9 +167,13 @@ def append_vectors(
     return pa.RecordBatch.from_arrays(arrays, names=names), reports
 
 
-def output_schema(schema: pa.Schema, lookups: dict[str, ColumnLookup], metadata: dict[str, str]) -> pa.Schema:
-    """Input columns, then the vector components; pandas' own column notes dropped (they no longer fit)."""
-    fields = list(schema) + [pa.field(n, pa.float32()) for lookup in lookups.values() for n in lookup.names]
+def output_schema(table: InputTable, lookups: dict[str, ColumnLookup], metadata: dict[str, str]) -> pa.Schema:
+    """Input columns as stored, partition columns, then the vector components; pandas' own column notes dropped
+    (they no longer fit)."""
+    schema = table.schema
+    fields = [pa.field(f.name, table.stored.get(f.name, f.type)) for f in schema]
+    fields += [pa.field(k, pa.string()) for k in table.partition if k not in schema.names]
+    fields += [pa.field(n, pa.float32()) for lookup in lookups.values() for n in lookup.names]
     kept = {k: v for k, v in (schema.metadata or {}).items() if k != b"pandas"}
     kept.update({f"{METADATA_PREFIX}{k}".encode(): str(v).encode() for k, v in metadata.items()})
     return pa.schema(fields, metadata=kept)
@@ -302,6 +189,9 @@ def provenance(result: ApplyResult) -> dict[str, str]:
         "unknown_rule": result.unknown,
         "columns": json.dumps(result.columns),
         "input": result.input_path,
+        "input_files": json.dumps(result.input_files),
+        "aliases": json.dumps(result.aliases),
+        "data_fingerprint": result.data_fingerprint,
     }
 
 
@@ -332,55 +222,91 @@ def apply_file(
     unknown: str = "unknown_row",
     chunk_rows: int = DEFAULT_CHUNK_ROWS,
     progress: Progress | None = None,
+    max_unknown_share: float | None = None,
+    aliases: list[str] | None = None,
 ) -> ApplyResult:
-    """Append vector columns to every row of ``input_path`` and write ``output_path`` (Parquet) atomically."""
+    """Append vector columns to every row of ``input_path`` and write ``output_path`` (Parquet) atomically.
+
+    ``input_path`` is a file, a glob or a (partitioned) folder. With ``max_unknown_share`` the job fails with
+    :class:`UnknownShareError`, writing nothing, when any column's share of rows that met the unknown rule is
+    above it.
+    """
     if chunk_rows < 1:
         raise ApplyInputError(f"chunk size must be at least 1 row, got {chunk_rows}")
+    if max_unknown_share is not None and not 0.0 <= max_unknown_share <= 1.0:
+        raise ApplyInputError(f"the largest unknown share must be between 0 and 1, got {max_unknown_share}")
     output = Path(output_path)
-    table = open_input(input_path, list(columns) if columns else vector_set.columns, chunk_rows)
+    tables = open_inputs(input_path, list(columns) if columns else vector_set.columns, chunk_rows)
+    table = tables[0]
     chosen = choose_columns(table, vector_set, columns)
-    if output.resolve() == table.path.resolve():
+    if any(output.resolve() == t.path.resolve() for t in tables):
         raise ApplyInputError(f"{output}: the output would overwrite the input; choose another path")
     lookups = prepare(vector_set, chosen, unknown)
     check_input(table, lookups)
     result = ApplyResult(
-        model_name, str(version), run_id, str(table.path), str(output), unknown, chosen,
-        datetime.now(UTC).isoformat(timespec="seconds"),
+        model_name, str(version), run_id, str(input_path), str(output), unknown, chosen,
+        datetime.now(UTC).isoformat(timespec="seconds"), aliases=sorted(aliases or []),
+        data_fingerprint=str(vector_set.metadata.get("data_fingerprint", "")),
+        input_files=[str(t.path) for t in tables],
         reports={c: ColumnReport(c) for c in chosen},
     )
-    schema = output_schema(table.schema, lookups, provenance(result))
-    output.parent.mkdir(parents=True, exist_ok=True)
-    handle, partial = tempfile.mkstemp(prefix=f".{output.name}.", suffix=".partial", dir=output.parent)
-    os.close(handle)
+    schema = output_schema(table, lookups, provenance(result))
+    total = sum(t.rows or 0 for t in tables)
     started = time.perf_counter()
     buffers = ChunkBuffers()
+    outputs = OutputSet(f"the apply output {output.name}")
+    part = table
     try:
+        partial = outputs.path(output)
         # dictionary pages for the input's columns as pyarrow would write them; none for the vector columns,
         # whose per-chunk dictionaries of floats would cost about 4x the write time for half the size
         with pq.ParquetWriter(partial, schema, use_dictionary=list(table.schema.names)) as writer:
-            for batch in read_chunks(table, chosen, chunk_rows):
-                out, reports = append_vectors(batch, lookups, str(table.path), buffers)
-                writer.write_batch(out)  # one row group per chunk, written before the buffers are reused
-                del out
-                for col, report in reports.items():
-                    result.reports[col] = result.reports[col].add(report)
-                result.rows += batch.num_rows
-                result.chunks += 1
-                result.largest_chunk = max(result.largest_chunk, batch.num_rows)
-                if progress is not None:
-                    progress(result.rows, table.rows or 0)
-        os.replace(partial, output)
+            for part in tables:
+                for batch in read_chunks(part, chosen, chunk_rows):
+                    out, reports = append_vectors(batch, lookups, str(part.path), buffers, part.stored)
+                    writer.write_batch(out)  # one row group per chunk, written before the buffers are reused
+                    del out
+                    for col, report in reports.items():
+                        result.reports[col] = result.reports[col].add(report)
+                    result.rows += batch.num_rows
+                    result.chunks += 1
+                    result.largest_chunk = max(result.largest_chunk, batch.num_rows)
+                    if progress is not None:
+                        progress(result.rows, max(total, result.rows))
+        check_unknown_share(result, max_unknown_share)
+        outputs.commit()
     except UnknownCategoryError as exc:
         raise ApplyInputError(str(exc)) from exc
     except CategoryTypeError as exc:  # a CSV block whose column changed type midway
-        raise ApplyInputError(f"{table.path}: {exc}") from exc
+        raise ApplyInputError(f"{part.path}: {exc}") from exc
     except pa.ArrowInvalid as exc:  # a row the reader cannot parse, a value that breaks the column's type
-        raise ApplyInputError(f"{table.path}: cannot be read as {table.format} ({exc})") from exc
+        raise ApplyInputError(f"{part.path}: cannot be read as {part.format} ({exc})") from exc
+    except OSError as exc:  # a full disk, a size limit, no permission: the output's fault, not the input's
+        if isinstance(exc, OutputError) or not writing_failed(exc):
+            raise
+        raise output_error(outputs.what, output, exc) from exc
     finally:
-        if os.path.exists(partial):
-            os.unlink(partial)
+        outputs.discard()  # after a commit only leftovers of a failure; the output itself stays
     result.seconds = time.perf_counter() - started
     return result
+
+
+def check_unknown_share(result: ApplyResult, limit: float | None) -> None:
+    """Refuse the output when any column's unknown share passes ``limit``, naming every such column."""
+    if limit is None:
+        return
+    over = [r for r in result.reports.values() if r.unknown_share > limit]
+    if over:
+        said = "; ".join(
+            f"column {r.column!r}: {100 * r.unknown_share:.2f}% of {r.rows:,} rows unknown "
+            f"({r.unknown - r.missing:,} unseen, {r.missing:,} missing; most frequent unseen: "
+            f"{', '.join(repr(c) for c, _ in r.top_unseen(3)) or 'none'})"
+            for r in over
+        )
+        raise UnknownShareError(
+            f"{result.input_path}: {said}; the largest unknown share allowed is {100 * limit:.2f}%. "
+            "Nothing was written"
+        )
 
 
 @task(name="apply-vectors", cache_policy=NO_CACHE)

@@ -16,9 +16,18 @@ missing (null, NaN, empty or blank text):
 - ``"error"``: refuse the input with :class:`UnknownCategoryError`, naming the column, how many values
   and a few of them. Missing values count as unknown here too.
 
+The shrink rule (``tasks/apply/shrink.py``, off by default) is applied here, once per column, before the
+unknown-category rule, so all three consumers apply it identically.
+
 Category column types (:func:`category_type_problem`): text always fits; integer, float or boolean input
 fits only when the vocabulary holds categories spelled that way (an integer column meeting a vocabulary of
 text would silently turn every row unknown); nested, binary, temporal and decimal columns never fit.
+
+Categories are read by the vocabulary's type: when every known category is an integer code in its plain
+spelling (``1045``, no leading zeros), a value spelled as a whole number with a decimal point (``1045.0``, what a
+spreadsheet or pandas makes of an integer column with gaps) or a sign (``+1045``) or leading zeros means that
+code, in text and float columns alike. A vocabulary of codes with leading zeros (postcodes, ``00712``) is text:
+its values must match as they are spelled.
 """
 
 from __future__ import annotations
@@ -36,6 +45,7 @@ import torch
 
 from entivec.schemas.vector_set import VectorSet, component_names
 from entivec.schemas.vocabulary import UNKNOWN_ID, Vocabulary, category_strings
+from entivec.tasks.apply.shrink import shrunk_matrix
 
 UNKNOWN_RULES = ("unknown_row", "zeros", "mean", "error")
 DEFAULT_UNKNOWN = "unknown_row"
@@ -78,6 +88,8 @@ def rule_matrix(vocabulary: Vocabulary, matrix: np.ndarray, unknown: str) -> np.
 # --- the type a category column may have --------------------------------------------------------------------
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
+_PLAIN_INTEGER = re.compile(r"^-?(0|[1-9]\d*)$")
+_WHOLE_NUMBER = re.compile(r"^[+-]?\d+(\.0*)?$")
 _FLOAT = re.compile(r"^[+-]?(\d+\.\d*|\.\d+|\d+(\.\d*)?[eE][+-]?\d+|nan|inf)$", re.IGNORECASE)
 
 
@@ -128,7 +140,7 @@ def category_type_problem(kind: str, type_name: str, vocabulary: Vocabulary) -> 
         )
     spelled = {
         "integer": any(_INTEGER.match(c) for c in known),
-        "float": any(_FLOAT.match(c) for c in known),
+        "float": any(_FLOAT.match(c) for c in known) or integer_codes(known),
         "boolean": any(c in ("True", "False") for c in known),
     }[kind]
     if spelled:
@@ -137,6 +149,21 @@ def category_type_problem(kind: str, type_name: str, vocabulary: Vocabulary) -> 
         f"has type {type_name}, but the vocabulary holds no {kind} categories{sample}: every value would be "
         "unknown. Read the column as text (or fix which column is meant)"
     )
+
+
+def integer_codes(categories: Sequence[str]) -> bool:
+    """Whether a vocabulary's known categories are all integer codes in their plain spelling."""
+    return bool(categories) and all(_PLAIN_INTEGER.match(c) for c in categories)
+
+
+def as_integer_code(values: pd.Series) -> pd.Series:
+    """Whole numbers spelled otherwise (``1045.0``, ``+1045``, ``01045``) in plain integer spelling; others NA."""
+    spelled = category_strings(values)
+    whole = spelled.str.fullmatch(_WHOLE_NUMBER.pattern).fillna(False).to_numpy(dtype=bool)
+    out = pd.Series(pd.NA, index=spelled.index, dtype="string")
+    if whole.any():
+        out[whole] = [str(int(v.split(".")[0])) for v in spelled[whole]]
+    return out
 
 
 # --- one column's lookup ------------------------------------------------------------------------------------
@@ -149,18 +176,20 @@ def _text_arrow(arrow_type: pa.DataType) -> bool:
 class ColumnLookup:
     """Vocabulary ids and vectors for one column under one unknown-category rule.
 
-    ``ids`` gives exactly what ``vocabulary.encode`` gives (the one spelling of categories), but works on the
-    distinct values where it can: a dictionary-encoded Arrow array or a pandas categorical is mapped through
-    its (small) dictionary, and text is first matched whole-array against the vocabulary as it is spelled,
-    with only the values that miss (unseen, missing, or spelled with extra blanks) going through
-    ``vocabulary.encode``. ``vectors`` gathers rows of the rule's matrix, component-major.
+    ``ids`` gives exactly what ``encode`` gives (``vocabulary.encode``, the one spelling of categories, with
+    whole numbers read as the codes of an integer vocabulary), but works on the distinct values where it can:
+    a dictionary-encoded Arrow array or a pandas categorical is mapped through its (small) dictionary, and
+    text is first matched whole-array against the vocabulary as it is spelled, with only the values that miss
+    (unseen, missing, or spelled otherwise) going through ``encode``. ``vectors`` gathers rows of the rule's
+    matrix, component-major.
     """
 
-    def __init__(self, column: str, vocabulary: Vocabulary, matrix: np.ndarray, unknown: str = DEFAULT_UNKNOWN):
+    def __init__(self, column: str, vocabulary: Vocabulary, matrix: np.ndarray, unknown: str = DEFAULT_UNKNOWN,
+                 *, confidence: pd.DataFrame | None = None, shrink: dict | None = None):
         self.column = column
         self.vocabulary = vocabulary
         self.unknown = check_unknown_rule(unknown)
-        self.table = rule_matrix(vocabulary, matrix, unknown)
+        self.table = rule_matrix(vocabulary, shrunk_matrix(vocabulary, matrix, confidence, shrink), unknown)
         self.dimension = int(self.table.shape[1])
         self.names = component_names(column, self.dimension)
         # component-major copy: gathering along axis 1 writes each component contiguously (pandas' and
@@ -170,6 +199,17 @@ class ColumnLookup:
         self._known_objects = pd.Index(np.array(known, dtype=object), dtype=object)
         self._known_arrow = pa.array(known, type=pa.string())
         self._last_dictionary: tuple[pa.Array, np.ndarray] | None = None
+        self.integer_codes = integer_codes(known)
+
+    def encode(self, values: pd.Series) -> np.ndarray:
+        """``vocabulary.encode``, reading whole numbers spelled otherwise as the codes of an integer vocabulary."""
+        ids = self.vocabulary.encode(values)
+        if self.integer_codes:
+            miss = ids == UNKNOWN_ID
+            if miss.any():
+                again = self.vocabulary.encode(as_integer_code(pd.Series(values).iloc[np.flatnonzero(miss)]))
+                ids[miss] = again
+        return ids
 
     # ids ---------------------------------------------------------------------------------------------------
 
@@ -185,7 +225,7 @@ class ColumnLookup:
             return distinct
         if isinstance(values, (pa.Array, pa.ChunkedArray)):
             values = values.to_pandas(types_mapper=_exact_pandas_type)
-        return self.vocabulary.encode(pd.Series(values))
+        return self.encode(pd.Series(values))
 
     def ids(self, values) -> np.ndarray:
         """Vocabulary ids (int64) of a pandas Series/Index, NumPy array or Arrow array; unknown -> 0."""
@@ -212,7 +252,7 @@ class ColumnLookup:
         if pd.api.types.is_integer_dtype(dtype) or pd.api.types.is_bool_dtype(dtype):
             codes, uniques = pd.factorize(series, use_na_sentinel=True)
             return _through(self.ids_of_distinct(pd.Series(uniques)), codes)
-        return self.vocabulary.encode(series)  # floats and anything else: the plain path, exact by definition
+        return self.encode(series)  # floats and anything else: the plain path, exact by definition
 
     def _ids_arrow(self, array: pa.Array) -> np.ndarray:
         if pa.types.is_dictionary(array.type):
@@ -231,7 +271,7 @@ class ColumnLookup:
         ids = positions.astype(np.int64) + 1
         miss = positions < 0
         if miss.any():
-            ids[miss] = self.vocabulary.encode(missed_values(miss))
+            ids[miss] = self.encode(missed_values(miss))
         return ids
 
     # vectors -----------------------------------------------------------------------------------------------
@@ -428,4 +468,9 @@ def prepare(
 ) -> dict[str, ColumnLookup]:
     """A lookup per column (default: every column of the vector set) under one unknown-category rule."""
     chosen = vector_set.columns if columns is None else list(columns)
-    return {c: ColumnLookup(c, vector_set.vocabularies[c], vector_set.vectors[c], unknown) for c in chosen}
+    shrink = vector_set.metadata.get("shrink")  # the version's own shrink rule, as trained
+    return {
+        c: ColumnLookup(c, vector_set.vocabularies[c], vector_set.vectors[c], unknown,
+                        confidence=vector_set.confidence.get(c), shrink=shrink)
+        for c in chosen
+    }

@@ -6,6 +6,10 @@ through the same :class:`~entivec.tasks.apply.lookup.ColumnLookup` as the transf
 
 from __future__ import annotations
 
+import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
+
 import mlflow.pyfunc
 import pandas as pd
 from mlflow.exceptions import MlflowException
@@ -73,6 +77,28 @@ def lookup_frame(
         lookup.check_known(ids, frame[col])
         blocks.append(pd.DataFrame(lookup.vectors(ids).T, columns=lookup.names, index=frame.index, copy=False))
     return pd.concat(blocks, axis=1) if len(blocks) > 1 else blocks[0]
+
+
+@contextmanager
+def example_warnings_quiet() -> Iterator[None]:
+    """While logging the model: MLflow's saving of a table example compares columns with a ``range``, which
+    pandas 3 flags as deprecated on every call. Nothing of ours to fix; keep it out of each train's output."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Operation with range is deprecated")
+        yield
+
+
+def input_example_for(vector_set: VectorSet, rows: int = 2) -> pd.DataFrame:
+    """A small table of known categories (the first ids of each column) that ``predict`` accepts as is.
+
+    Logged with the model, it shows a user what the input looks like and lets MLflow check the signature
+    against a real call; it holds only category labels, never a row of training data.
+    """
+    example = {}
+    for col in vector_set.columns:
+        known = vector_set.vocabularies[col].categories[1 : rows + 1] or [None]
+        example[col] = [known[i % len(known)] for i in range(rows)]
+    return pd.DataFrame(example, dtype=object)
 
 
 def signature_for(vector_set: VectorSet) -> ModelSignature:

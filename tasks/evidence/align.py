@@ -4,19 +4,26 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import orthogonal_procrustes
 
 
-def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+def align_to(
+    source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None = None, weights: np.ndarray | None = None
+) -> np.ndarray:
     """Rotate and translate ``source`` onto ``reference`` by orthogonal Procrustes, fitted on ``rows``.
 
     Both matrices have one row per vocabulary id and the same shape. With A and B the chosen rows of each,
     centred on their own means, the rotation R is the orthogonal matrix minimising ||A R - B||_F, which is
     U Vᵀ for the singular value decomposition A ᵀB = U S Vᵀ (Schönemann, "A generalized solution of the
-    orthogonal Procrustes problem", Psychometrika 1966). The whole of ``source`` is then moved:
+    orthogonal Procrustes problem", Psychometrika 1966), computed by ``scipy.linalg.orthogonal_procrustes``.
+    The whole of ``source`` is then moved:
     (source - mean_A) R + mean_B. R may include a reflection; no scaling is applied.
 
     ``rows`` are vocabulary ids (integers) or a boolean mask; the default is every row but 0, the unknown row,
     whose vector stands for whatever was rare or missing and is no fixed point to align on.
+
+    ``weights`` (one per vocabulary row, non-negative) fit a weighted Procrustes instead: weighted means, and
+    the SVD of Aᵀ W B, so that well-measured rows (weights = training counts) decide the rotation.
     """
     src = np.asarray(source, dtype=np.float64)
     ref = np.asarray(reference, dtype=np.float64)
@@ -36,7 +43,17 @@ def align_to(source: np.ndarray, reference: np.ndarray, rows: np.ndarray | None 
     if picked.size == 0:
         raise ValueError("align_to needs at least one shared row to align on")
     a, b = src[picked], ref[picked]
-    mean_a, mean_b = a.mean(axis=0), b.mean(axis=0)
-    u, _, vt = np.linalg.svd((a - mean_a).T @ (b - mean_b))
-    rotation = u @ vt
+    if weights is None:
+        w = np.full(len(picked), 1.0 / len(picked))
+    else:
+        w = np.asarray(weights, dtype=np.float64)[picked]
+        if (w < 0).any() or not np.isfinite(w).all() or w.sum() <= 0:
+            raise ValueError("weights must be finite, non-negative and not all zero on the rows aligned on")
+        w = w / w.sum()
+    mean_a, mean_b = (a.mean(axis=0), b.mean(axis=0)) if weights is None else (w @ a, w @ b)
+    # Weighted orthogonal Procrustes is the plain problem on rows scaled by the square roots of the weights. Equal
+    # weights are left unscaled: with fewer rows than dimensions the rotation is not unique, and an unscaled
+    # problem gives the same choice as the textbook computation the tests compare with.
+    root = 1.0 if weights is None else np.sqrt(w)[:, None]
+    rotation, _ = orthogonal_procrustes((a - mean_a) * root, (b - mean_b) * root)
     return (src - mean_a) @ rotation + mean_b

@@ -21,6 +21,7 @@ from sklearn.model_selection import KFold, StratifiedKFold
 
 from entivec.schemas.spec import Spec, TrainingSpec
 from entivec.tasks.evidence.align import align_to
+from entivec.tasks.evidence.confidence import FoldSpread
 from entivec.tasks.train.encoder import EncodedInputs
 from entivec.tasks.train.trainer import fit_network
 
@@ -70,6 +71,8 @@ def out_of_fold_vectors(
     reference: dict[str, np.ndarray],
     task: str,
     fit_folds: Callable[[list[np.ndarray]], Sequence[dict[str, np.ndarray]]] | None = None,
+    spread: FoldSpread | None = None,
+    keep: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Vectors for downstream training rows, each from a network that never saw that row's target.
 
@@ -89,7 +92,12 @@ def out_of_fold_vectors(
     returns their matrices in the same order, so the folds can be trained in parallel (``cross_fit_vectors``);
     the assembly is the same either way.
 
-    Returns per column an array (n_train, dim), float64.
+    ``spread`` (a ``confidence.FoldSpread``) collects, fold by fold, how far each category's aligned fold vector
+    lies from its full-data vector: the per-category confidence of the vector set. ``keep`` (sorted row
+    positions) returns the vectors of those rows only, so the folds can train on every row while the memory of
+    the result stays that of the downstream sample.
+
+    Returns per column an array (n_train, dim) (or (len(keep), dim)), float64.
     """
     if (fit_fold is None) == (fit_folds is None):
         raise ValueError("give exactly one of fit_fold and fit_folds")
@@ -105,7 +113,12 @@ def out_of_fold_vectors(
     for j, col in enumerate(columns):
         if n and ids[:, j].max() >= refs[col].shape[0]:
             raise ValueError(f"column {col!r}: id {ids[:, j].max()} is beyond its {refs[col].shape[0]} vector rows")
-    out = {c: np.full((n, refs[c].shape[1]), np.nan) for c in columns}
+    keep = np.arange(n) if keep is None else np.asarray(keep, dtype=np.int64)
+    if keep.size and (keep.min() < 0 or keep.max() >= n or np.any(np.diff(keep) <= 0)):
+        raise ValueError("keep must be sorted, distinct row positions of cat_ids")
+    slot = np.full(n, -1, dtype=np.int64)  # row position -> its row in the output (-1: not returned)
+    slot[keep] = np.arange(keep.size)
+    out = {c: np.full((keep.size, refs[c].shape[1]), np.nan) for c in columns}
     covered = np.zeros(n, dtype=np.int64)
 
     splits = list(fold_splitter(task, folds, seed).split(np.zeros((n, 1)), y))
@@ -129,9 +142,14 @@ def out_of_fold_vectors(
             learned[ids[train_rows, j]] = True
             learned[0] = False
             aligned = align_to(mat, refs[col], rows=learned if learned.any() else None)
-            held_ids = ids[held_rows, j]
-            out[col][held_rows] = aligned[np.where(learned[held_ids], held_ids, 0)]
+            if spread is not None:  # the unknown row counts where the fold saw rare or missing rows
+                spread.add(col, mat, refs[col], np.bincount(ids[train_rows, j], minlength=mat.shape[0]))
+            wanted = held_rows[slot[held_rows] >= 0]
+            held_ids = ids[wanted, j]
+            out[col][slot[wanted]] = aligned[np.where(learned[held_ids], held_ids, 0)]
         covered[held_rows] += 1
+        if spread is not None:
+            spread.folds += 1
     if not (covered == 1).all():  # a splitter that repeats or skips rows would leak or leave holes
         raise RuntimeError("the folds did not cover every training row exactly once")
     return out
@@ -153,9 +171,17 @@ def fit_fold(
     sizes: list[int],
     training: TrainingSpec,
     task: str,
+    fold: int = 0,
 ) -> dict[str, np.ndarray]:
-    """Train one network on ``rows`` of ``inputs``/``y`` (without progress output); its vector matrices."""
-    quiet = training.model_copy(update={"progress": False})
+    """Train one network on ``rows`` of ``inputs``/``y`` (without progress output); its vector matrices.
+
+    Fold ``fold`` is seeded with ``training.seed + 1 + fold``: each fold network starts from its own random
+    tables. With one shared start, a category a fold barely trained on would keep nearly the same starting
+    vector in every fold, and its vectors would agree for lack of data, not because the data fix them (measured
+    on nycflights13 planes: the rarest looked the most certain). Distinct starts make the spread of a category's
+    fold vectors (``confidence.FoldSpread``) include what its start leaves undecided.
+    """
+    quiet = training.model_copy(update={"progress": False, "seed": training.seed + 1 + fold})
     with TORCH_LOCK:
         result = fit_network(
             inputs.take(rows), np.asarray(y)[rows], columns=columns, cardinalities=cardinalities, sizes=sizes,
@@ -185,6 +211,7 @@ def submit_folds(
     return [
         fit_fold_task.with_options(task_run_name=f"fit-fold-{i}").submit(
             inputs, y, rows, columns=columns, cardinalities=cardinalities, sizes=sizes, training=training, task=task,
+            fold=i,
         )
         for i, rows in enumerate(fold_rows)
     ]
@@ -197,8 +224,13 @@ def cross_fit_vectors(
     cardinalities: list[int],
     sizes: list[int],
     reference: dict[str, np.ndarray],
+    *,
+    spread: FoldSpread | None = None,
+    keep: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Per embedded column, an (n_train, dim) array whose row i comes from a network that never saw row i.
+
+    ``spread`` and ``keep`` are passed to ``out_of_fold_vectors`` (per-category confidence; only some rows back).
 
     Called from a flow body, every fold is submitted to the flow's task runner at once (in parallel on a Dask
     task runner; one after another on Prefect's default thread pool, see ``TORCH_LOCK``). Called anywhere else,
@@ -217,9 +249,9 @@ def cross_fit_vectors(
     def fit_folds(fold_rows: list[np.ndarray]) -> list[dict[str, np.ndarray]]:
         if in_flow_body:
             return [future.result() for future in submit_folds(inputs, y, fold_rows, **settings)]
-        return [fit_fold(inputs, y, rows, **settings) for rows in fold_rows]
+        return [fit_fold(inputs, y, rows, **settings, fold=i) for i, rows in enumerate(fold_rows)]
 
     return out_of_fold_vectors(
         inputs.cat_ids, y, columns=spec.embed_names, folds=spec.evaluation.folds, seed=spec.evaluation.seed,
-        fit_folds=fit_folds, reference=reference, task=spec.target.task,
+        fit_folds=fit_folds, reference=reference, task=spec.target.task, spread=spread, keep=keep,
     )

@@ -38,7 +38,7 @@ from threadpoolctl import threadpool_limits
 from entivec.schemas.spec import Spec
 from entivec.schemas.vocabulary import category_strings
 from entivec.tasks.evidence.crossfit import fold_splitter
-from entivec.tasks.evidence.metrics import PRIMARY, task_metrics
+from entivec.tasks.evidence.metrics import BOOTSTRAP_RESAMPLES, PRIMARY, paired_interval, task_metrics
 from entivec.tasks.train import targets
 
 # Feature sets, in the order they appear in the table. Only the first three are "without vectors".
@@ -259,6 +259,8 @@ def compare_downstream(
     vectors_in_sample: dict[str, np.ndarray],
     vectors_test: dict[str, np.ndarray],
     network_test_pred: np.ndarray | None,
+    n_available: int | None = None,
+    n_test_available: int | None = None,
 ) -> Evidence:
     """Fit every downstream model of ``spec.evaluation.models`` on every feature set; score on the same test rows.
 
@@ -276,6 +278,9 @@ def compare_downstream(
     Regression models learn the target after ``spec.target.transform`` and are scored after the inverse, on
     the original scale. When ``train`` has more than ``evaluation.max_train_rows`` rows, the models train on a
     seeded sample of that many (the table's ``n_train`` against ``n_train_available`` shows it).
+    ``n_available`` / ``n_test_available`` name the rows the caller sampled ``train`` / ``test`` from, when it
+    did, so the summary states the whole sample; the summary also gives a paired bootstrap confidence interval
+    of the difference between the vectors and the best feature set without them over the test rows.
 
     ``vectors_help`` is True only when the out-of-fold vectors beat the best feature set without vectors on the
     primary metric for every downstream model. One split is not a significance test: ``predictions`` keeps
@@ -300,8 +305,9 @@ def compare_downstream(
         if network_test_pred.shape[0] != len(test):
             raise ValueError(f"network_test_pred has {network_test_pred.shape[0]} rows, test has {len(test)}")
 
-    n_available = len(train)
-    keep = capped_rows(n_available, ev.max_train_rows, ev.seed)
+    keep = capped_rows(len(train), ev.max_train_rows, ev.seed)
+    n_available = max(int(n_available or 0), len(train))
+    n_test_available = max(int(n_test_available or 0), len(test))
     train = train.iloc[keep]
     y_train = y_train_all[keep]
     if task_kind == "binary" and np.unique(y_train).size < 2:
@@ -337,6 +343,7 @@ def compare_downstream(
                     "n_train": len(keep),
                     "n_train_available": n_available,
                     "n_test": len(test),
+                    "n_test_available": n_test_available,
                     "n_features": X_train.shape[1],
                     "fit_seconds": seconds,
                     "leaky": feature_set in LEAKY_SETS,
@@ -352,13 +359,20 @@ def compare_downstream(
                 "n_train": n_available,  # the network trained on the training rows before any cap
                 "n_train_available": n_available,
                 "n_test": len(test),
+                "n_test_available": n_test_available,
                 "n_features": len(spec.feature_columns),
                 "fit_seconds": float("nan"),  # trained elsewhere; its time is the trainer's to report
                 "leaky": False,
             }
         )
     table = pd.DataFrame(rows)
-    vectors_help, summary = _verdict(table, spec, primary)
+    intervals = {
+        m: paired_interval(task_kind, y_test, predictions[f"{m}/vectors"], predictions[f"{m}/{best}"], seed=ev.seed)
+        for m in ev.models
+        for best in [str(table[(table["model"] == m) & table["features"].isin(NON_VECTOR_SETS)]
+                         .set_index("features")[primary].idxmin())]
+    }
+    vectors_help, summary = _verdict(table, spec, primary, intervals)
     return Evidence(
         table=table,
         primary_metric=primary,
@@ -369,20 +383,26 @@ def compare_downstream(
     )
 
 
-def _verdict(table: pd.DataFrame, spec: Spec, primary: str) -> tuple[bool, str]:
+def _verdict(
+    table: pd.DataFrame, spec: Spec, primary: str, intervals: dict[str, tuple[float, float, float]] | None = None
+) -> tuple[bool, str]:
     """Per model: out-of-fold vectors against the best feature set without vectors; lower is better."""
     ev = spec.evaluation
     first = table.iloc[0]
     n_train, n_available, n_test = int(first["n_train"]), int(first["n_train_available"]), int(first["n_test"])
+    n_test_available = int(first.get("n_test_available", n_test))
     scale = "original target scale" if spec.target.task == "regression" else "predicted probabilities"
     sample = (
-        f"a seeded sample of {n_available:,} available rows (evaluation.max_train_rows)"
+        f"a seeded sample of {n_available:,} available rows (seed {ev.seed}; evaluation.max_train_rows)"
         if n_train < n_available
         else "all training rows"
     )
+    tested = (f"a seeded sample of {n_test:,} of {n_test_available:,} test rows (evaluation.max_test_rows)"
+              if n_test < n_test_available else f"{n_test:,} test rows")
     lines = [
-        f"Held-out evaluation on {n_test:,} test rows; downstream models trained on {n_train:,} rows ({sample}). "
-        f"Primary metric: {primary} on the {scale} (lower is better)."
+        f"Held-out evaluation on {tested}; downstream models trained on {n_train:,} rows ({sample}). "
+        f"Primary metric: {primary} on the {scale} (lower is better). Intervals: 95% paired bootstrap over the "
+        f"test rows ({BOOTSTRAP_RESAMPLES} resamples); they cover the test sample, not the choice of training sample."
     ]
     wins, leaky_notes = 0, []
     for model_name in ev.models:
@@ -393,9 +413,13 @@ def _verdict(table: pd.DataFrame, spec: Spec, primary: str) -> tuple[bool, str]:
         helps = vec < best
         wins += helps
         change = f" ({abs(vec - best) / best:.1%} {'better' if helps else 'worse'})" if best > 0 and vec != best else ""
+        interval = ""
+        if intervals and model_name in intervals:
+            diff, low, high = intervals[model_name]
+            interval = f"; difference {diff:+.4g} [{low:+.4g}, {high:+.4g}]"
         lines.append(
             f"- {model_name}: vectors {vec:.6g} vs best without vectors {best:.6g} ({best_name}): "
-            f"vectors {'help' if helps else 'do not help'}{change}."
+            f"vectors {'help' if helps else 'do not help'}{change}{interval}."
         )
         leaky_notes.append(f"{model_name} {float(scores.loc['vectors_in_sample']):.6g}")
     n_models = len(ev.models)

@@ -51,8 +51,11 @@ from entivec.tasks.lifecycle.locks import LEASE_SUFFIX, LOCK_MODE_VARIABLE, Audi
 AUDIT_PREFIX = "entivec.audit."
 STATE_SUFFIX = ".state"
 
-EVENTS = ("train", "promote", "forced_promote", "rollback", "refused", "outside_move", "move")
+EVENTS = ("train", "promote", "forced_promote", "rollback", "refused", "outside_move", "move",
+          "incomplete_removed", "incomplete_completed", "report_failed")
 SETTLED = ("done", "repaired")  # states of entries whose move happened
+# Entries that record a fact about a version and move no alias.
+NOT_MOVES = ("refused", "incomplete_completed", "report_failed")
 # MLflow's SQL schema holds registered-model tag values in VARCHAR(5000); stay below it on every backend.
 MAX_ENTRY_CHARS = 4800
 
@@ -95,7 +98,7 @@ class AuditEntry:
     @property
     def moved(self) -> bool:
         """True when the alias really moved (a settled move; a refusal moves nothing)."""
-        return self.state in SETTLED and self.event != "refused"
+        return self.state in SETTLED and self.event not in NOT_MOVES
 
 
 def _entry_key(seq: int) -> str:
@@ -261,7 +264,8 @@ class Session:
         """
         registry.check_alias(alias)
         version = str(version)
-        registry.resolve(self.name, version)  # a missing version gets the registry's own message
+        # A missing version gets the registry's own message; a registration in progress moves its own alias.
+        registry.resolve(self.name, version, allow_incomplete=True)
         current = self.aliases().get(alias)
         if expected_from is not _ANY and current != (None if expected_from is None else str(expected_from)):
             raise ConcurrentChange(
@@ -311,6 +315,9 @@ class Session:
             else:
                 self._settle(e, "unresolved", f"interrupted; {e.alias} was found at {_v(now)}")
             touched.append(e)
+        touched += self.settle_incomplete(entries)
+        aliases = self.aliases()
+        entries = self.entries()
         expected = replay(entries)
         for alias in sorted(set(expected) | set(aliases) & {registry.STAGING, registry.PRODUCTION}):
             if aliases.get(alias) != expected.get(alias):
@@ -328,6 +335,39 @@ class Session:
         return touched
 
 
+    def settle_incomplete(self, entries: list[AuditEntry]) -> list[AuditEntry]:
+        """Remove or complete versions whose registration died (killed, or its store failed), with an entry each.
+
+        A version whose owner process still runs is left alone. One that holds an alias its settled ``train``
+        entry gave it lacked only the final mark, so it is completed; any other is removed (with any alias on
+        it).
+        """
+        touched: list[AuditEntry] = []
+        aliases = self.aliases()
+        for mv in registry.client().search_model_versions(f"name = '{self.name}'"):
+            if not registry.is_incomplete(mv) or registry.registration_alive(mv):
+                continue
+            version = str(mv.version)
+            held = sorted(a for a, v in aliases.items() if v == version)
+            recorded = [e for e in entries if e.event == "train" and e.to_version == version and e.moved]
+            owner = (mv.tags or {}).get(registry.OWNER_TAG, "unknown")
+            if recorded and recorded[-1].alias in held:
+                note = (f"registration by {owner} stopped after its {recorded[-1].alias} move (history entry "
+                        f"{recorded[-1].seq}) and before its final mark; completed by repair")
+                registry.mark_complete(self.name, version, note)
+                touched.append(self.record(
+                    event="incomplete_completed", alias=recorded[-1].alias, from_version=version,
+                    to_version=version, by="entivec", reason=note, details={"run_id": mv.run_id}))
+            else:
+                note = (f"registration by {owner} never finished (no settled train entry for it); the incomplete "
+                        f"version was removed" + (f" with its alias {', '.join(held)}" if held else ""))
+                registry.client().delete_model_version(self.name, version)
+                touched.append(self.record(
+                    event="incomplete_removed", alias=held[0] if held else "-", from_version=version,
+                    to_version=None, by="entivec", reason=note, details={"run_id": mv.run_id}))
+        return touched
+
+
 def _v(version: Any) -> str:
     return "no version" if version is None else f"version {version}"
 
@@ -336,6 +376,7 @@ def _v(version: Any) -> str:
 def locked(name: str, *, timeout: float = 300.0, repair: bool = True) -> Iterator[Session]:
     """Hold ``name``'s lifecycle lock; the history is repaired first unless ``repair`` is False."""
     registry.check_name(name)
+    registry.end_abandoned_runs(name)  # runs a killed process left RUNNING, even before any version exists
     registry.list_versions(name)  # an unknown model gets a clear message before any lock is taken
     with lifecycle_lock(name, timeout):
         session = Session(name)
@@ -374,6 +415,14 @@ def history(name: str, *, repair: bool = True) -> list[AuditEntry]:
         return read_history(name)
     with locked(name) as session:
         return session.entries()
+
+
+def record_note(name: str, version: str, *, event: str, reason: str, details: dict[str, Any] | None = None,
+                alias: str = registry.STAGING) -> AuditEntry:
+    """Record a fact about a version that moves no alias (e.g. its report could not be written)."""
+    with locked(name) as session:
+        return session.record(event=event, alias=alias, from_version=version, to_version=version, by=None,
+                              reason=reason, details=details)
 
 
 # --- showing ----------------------------------------------------------------------------------------------------

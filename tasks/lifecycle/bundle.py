@@ -37,6 +37,7 @@ class BundleInputs:
     test_actual: np.ndarray
     test_predicted: np.ndarray
     profile: dict | None = None  # what the training rows looked like, for drift checks of later data
+    confidence: dict | None = None  # column -> per-category confidence table (VectorSet.confidence)
 
 
 def summary_text(b: BundleInputs) -> str:
@@ -89,7 +90,9 @@ def write_bundle(b: BundleInputs, folder: Path) -> Path:
             "network_metrics": b.network_metrics,
             "primary_metric": b.evidence.primary_metric,
             "vectors_help": b.evidence.vectors_help,
+            "shrink": b.spec.shrink.model_dump(),  # applied by every consumer (tasks/apply/lookup.py)
         },
+        dict(b.confidence or {}),
     ).save(vector_folder)
 
     (folder / "network").mkdir(exist_ok=True)

@@ -90,6 +90,10 @@ def bootstrap_batch(n: int, resamples: int) -> int:
     return max(1, min(resamples, _BOOTSTRAP_CELLS // max(n, 1)))
 
 
+def _mean_difference(reference: np.ndarray, candidate: np.ndarray, axis: int = -1) -> np.ndarray:
+    return np.mean(reference - candidate, axis=axis)
+
+
 def paired_bootstrap(
     loss_reference: np.ndarray,
     loss_candidate: np.ndarray,
@@ -105,8 +109,11 @@ def paired_bootstrap(
 
     Each resample draws n row positions with replacement (``numpy.random.default_rng(seed).integers``, in
     batches of ``batch`` resamples) and takes the mean difference over them; the interval is the
-    (1 - confidence)/2 and (1 + confidence)/2 quantiles (linear interpolation) of those means.
+    (1 - confidence)/2 and (1 + confidence)/2 quantiles (linear interpolation) of those means. Computed by
+    ``scipy.stats.bootstrap`` (paired, percentile method, vectorised).
     """
+    from scipy.stats import bootstrap
+
     ref = np.asarray(loss_reference, dtype=np.float64).reshape(-1)
     cand = np.asarray(loss_candidate, dtype=np.float64).reshape(-1)
     if ref.shape != cand.shape:
@@ -118,14 +125,12 @@ def paired_bootstrap(
         raise ValueError("per-row losses must be finite")
     diff = ref - cand
     batch = batch or bootstrap_batch(n, resamples)
-    rng = np.random.default_rng(seed)
-    means = np.empty(resamples)
-    for start in range(0, resamples, batch):
-        size = min(batch, resamples - start)
-        rows = rng.integers(0, n, (size, n))
-        means[start : start + size] = diff[rows].mean(axis=1)
-    alpha = (1.0 - confidence) / 2.0
-    low, high = np.quantile(means, [alpha, 1.0 - alpha])
+    result = bootstrap(
+        (ref, cand), _mean_difference, paired=True, vectorized=True, n_resamples=resamples, batch=batch,
+        confidence_level=confidence, method="percentile", rng=np.random.default_rng(seed),
+    )
+    means = result.bootstrap_distribution
+    low, high = result.confidence_interval.low, result.confidence_interval.high
     return PairedInterval(
         reference=reference, candidate=candidate, n=n, reference_loss=float(ref.mean()),
         candidate_loss=float(cand.mean()), difference=float(diff.mean()), low=float(low), high=float(high),

@@ -18,6 +18,17 @@ their spelling, never by id; the unknown row 0 is left out, it stands for whatev
   related from unrelated vectors. ``chance_overlap`` = k / (n - 1) is what unrelated vectors give on average.
 - **added / dropped**: categories only in the newer / only in the older vocabulary, as shares of the
   newer / older vocabulary.
+- **movement beyond noise**: where both versions carry per-category confidence (``VectorSet.confidence``: the
+  root mean squared spread of a category's aligned fold vectors), a category's own noise is
+  ``sqrt(spread_older² + spread_newer²)``, the spread expected of the difference of two independent estimates,
+  in the same relative units as its drift. A category moved *beyond noise* when its drift exceeds
+  ``NOISE_FACTOR`` times that (two standard errors, common practice, no source); *within noise* otherwise;
+  *not measured* without confidence on both sides. Categories with fewer than ``RARE_COUNT`` training rows in
+  either version are *rare* and listed apart: their vectors move with every retrain.
+
+``movers`` lists every shared category in this order: non-rare categories that moved beyond noise (largest
+drift first), then the other non-rare ones, then the rare ones, each group by drift; ``rare`` and ``moved``
+say which group a row is in, so the head of the table is what a reviewer should look at first.
 """
 
 from __future__ import annotations
@@ -31,8 +42,11 @@ from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
 from entivec.tasks.evidence.align import align_to
 
-# Rows of the distance matrix computed at once in the neighbour search: bounds memory to CHUNK x n floats.
-_NEIGHBOUR_CHUNK = 1024
+# Our defaults, no source: a category seen fewer times than this in either version is "rare"; movement beyond
+# this many times a category's own noise counts as movement (about two standard errors).
+RARE_COUNT = 10
+NOISE_FACTOR = 2.0
+BEYOND, WITHIN, UNMEASURED = "beyond noise", "within noise", "not measured"
 
 
 @dataclass
@@ -51,7 +65,9 @@ class ColumnComparison:
     neighbours: int  # k actually used (0 when not measurable)
     neighbour_overlap: float  # NaN when not measurable
     chance_overlap: float
-    movers: pd.DataFrame  # category, drift, count_older, count_newer; largest drift first, every shared category
+    # category, drift, count_older, count_newer, noise, moved, rare: every shared category, ordered as the module
+    # notes say (beyond noise first, rare last)
+    movers: pd.DataFrame
     aligned_newer: np.ndarray = field(repr=False)  # shared rows of the newer vectors, aligned onto the older
     older_shared: np.ndarray = field(repr=False)  # shared rows of the older vectors (padded to one width)
 
@@ -63,8 +79,24 @@ class ColumnComparison:
     def dropped_share(self) -> float:
         return len(self.dropped) / self.categories_older if self.categories_older else 0.0
 
+    @property
+    def moved_beyond_noise(self) -> int:
+        """Non-rare shared categories that moved more than their own uncertainty."""
+        return int(((self.movers["moved"] == BEYOND) & ~self.movers["rare"]).sum())
+
+    @property
+    def noise_measured(self) -> bool:
+        return bool((self.movers["moved"] != UNMEASURED).any())
+
+    def rare_movers(self) -> pd.DataFrame:
+        return self.movers[self.movers["rare"]]
+
     def summary(self, top: int = 5) -> dict:
         """JSON-safe figures of the column (top movers cut to ``top``)."""
+        def records(frame: pd.DataFrame) -> list[dict]:
+            return [{k: (_num(v) if isinstance(v, float) else v) for k, v in row.items()}
+                    for row in frame.head(top).to_dict("records")]
+
         return {
             "column": self.column,
             "categories_older": self.categories_older,
@@ -80,10 +112,10 @@ class ColumnComparison:
             "neighbours": self.neighbours,
             "neighbour_overlap": _num(self.neighbour_overlap),
             "chance_overlap": _num(self.chance_overlap),
-            "top_movers": [
-                {k: (_num(v) if isinstance(v, float) else v) for k, v in row.items()}
-                for row in self.movers.head(top).to_dict("records")
-            ],
+            "noise_measured": self.noise_measured,
+            "moved_beyond_noise": self.moved_beyond_noise,
+            "top_movers": records(self.movers[~self.movers["rare"]]),
+            "rare_movers": records(self.rare_movers()),
         }
 
 
@@ -126,23 +158,17 @@ def procrustes_drift(newer: np.ndarray, older: np.ndarray) -> tuple[np.ndarray, 
 def nearest_neighbours(points: np.ndarray, k: int) -> np.ndarray:
     """(n, k) indices of each point's k nearest other points by Euclidean distance, nearest first.
 
-    Exact brute force in chunks of rows (memory CHUNK x n). Ties are broken by the lower index.
+    scikit-learn's exact brute-force search (``NearestNeighbors(algorithm="brute")``, which works in chunks of
+    bounded memory); asked without query points it leaves each point out of its own list.
     """
+    from sklearn.neighbors import NearestNeighbors
+
     x = np.asarray(points, dtype=np.float64)
     n = x.shape[0]
     if not 1 <= k <= n - 1:
         raise ValueError(f"k must be between 1 and n - 1 = {n - 1}, got {k}")
-    squared = np.sum(x**2, axis=1)
-    out = np.empty((n, k), dtype=np.int64)
-    for start in range(0, n, _NEIGHBOUR_CHUNK):
-        stop = min(start + _NEIGHBOUR_CHUNK, n)
-        d2 = squared[start:stop, None] + squared[None, :] - 2.0 * (x[start:stop] @ x.T)
-        np.maximum(d2, 0.0, out=d2)
-        d2[np.arange(stop - start), np.arange(start, stop)] = np.inf  # a point is not its own neighbour
-        # A stable sort on (distance, index) gives a deterministic order among ties.
-        order = np.argsort(d2, axis=1, kind="stable")[:, :k]
-        out[start:stop] = order
-    return out
+    search = NearestNeighbors(n_neighbors=k, algorithm="brute", metric="euclidean", n_jobs=1).fit(x)
+    return search.kneighbors(return_distance=False).astype(np.int64, copy=False)
 
 
 def neighbour_overlap(older: np.ndarray, newer: np.ndarray, k: int) -> tuple[np.ndarray, int]:
@@ -170,8 +196,15 @@ def compare_column(
     newer_vectors: np.ndarray,
     *,
     neighbours: int = 10,
+    older_confidence: pd.DataFrame | None = None,
+    newer_confidence: pd.DataFrame | None = None,
+    rare_count: int = RARE_COUNT,
 ) -> ColumnComparison:
-    """Compare one column of two vector sets (``older`` is the reference the newer is aligned onto)."""
+    """Compare one column of two vector sets (``older`` is the reference the newer is aligned onto).
+
+    ``older_confidence`` / ``newer_confidence`` are the versions' confidence tables of the column (one row per
+    vocabulary id, ``VectorSet.confidence``); without both, movement is "not measured" against noise.
+    """
     old_index, new_index = known_rows(older_vocabulary), known_rows(newer_vocabulary)
     shared_mask = old_index.isin(new_index)
     shared = old_index[shared_mask]
@@ -187,15 +220,24 @@ def compare_column(
     overlap, k = neighbour_overlap(older_shared, newer_shared, neighbours)
     old_counts = np.asarray(older_vocabulary.counts)[old_ids]
     new_counts = np.asarray(newer_vocabulary.counts)[new_ids]
+    noise = _noise(older_confidence, newer_confidence, old_ids, new_ids, older_shared)
+    with np.errstate(invalid="ignore"):
+        moved = np.where(~np.isfinite(noise), UNMEASURED, np.where(per_row > NOISE_FACTOR * noise, BEYOND, WITHIN))
     movers = pd.DataFrame(
         {
             "category": shared.astype(str).to_numpy(dtype=object),
             "drift": per_row,
             "count_older": old_counts.astype(np.int64),
             "count_newer": new_counts.astype(np.int64),
+            "noise": noise,
+            "moved": moved.astype(object),
+            "rare": (np.minimum(old_counts, new_counts) < rare_count),
         }
     )
-    movers = movers.sort_values("drift", ascending=False, kind="stable", na_position="last").reset_index(drop=True)
+    group = np.where(movers["rare"], 2, np.where(movers["moved"] == BEYOND, 0, 1))
+    movers = movers.assign(_group=group, _key=-movers["drift"].fillna(-np.inf))
+    movers = movers.sort_values(["_group", "_key"], kind="stable").drop(columns=["_group", "_key"])
+    movers = movers.reset_index(drop=True)
     n_shared = len(shared)
     return ColumnComparison(
         column=column,
@@ -216,6 +258,19 @@ def compare_column(
     )
 
 
+def _noise(older: pd.DataFrame | None, newer: pd.DataFrame | None, old_ids: np.ndarray, new_ids: np.ndarray,
+           older_shared: np.ndarray) -> np.ndarray:
+    """Per shared category, sqrt(spread_older² + spread_newer²) in drift units; NaN where not measured."""
+    if older is None or newer is None or len(old_ids) < 2:
+        return np.full(len(old_ids), np.nan)
+    scale = float(np.sqrt(np.mean(np.sum((older_shared - older_shared.mean(axis=0)) ** 2, axis=1))))
+    if scale == 0:
+        return np.full(len(old_ids), np.nan)
+    s_old = older["spread"].to_numpy(dtype=np.float64)[old_ids]
+    s_new = newer["spread"].to_numpy(dtype=np.float64)[new_ids]
+    return np.sqrt(s_old**2 + s_new**2) / scale
+
+
 def compare_vector_sets(older: VectorSet, newer: VectorSet, *, neighbours: int = 10) -> dict[str, ColumnComparison]:
     """Every column both vector sets hold, compared (columns held by one only are left out; see ``columns_of``)."""
     return {
@@ -226,6 +281,8 @@ def compare_vector_sets(older: VectorSet, newer: VectorSet, *, neighbours: int =
             newer.vocabularies[col],
             newer.vectors[col],
             neighbours=neighbours,
+            older_confidence=older.confidence.get(col),
+            newer_confidence=newer.confidence.get(col),
         )
         for col in older.columns
         if col in newer.vectors
@@ -245,7 +302,8 @@ def comparison_table(comparisons: dict[str, ColumnComparison]) -> pd.DataFrame:
     """One row per column: the figures a reader scans first."""
     rows = []
     for comp in comparisons.values():
-        top = comp.movers.head(3)
+        top = comp.movers[~comp.movers["rare"]].head(3)
+        rare = comp.rare_movers().head(3)
         rows.append(
             {
                 "column": comp.column,
@@ -256,8 +314,12 @@ def comparison_table(comparisons: dict[str, ColumnComparison]) -> pd.DataFrame:
                 "drift": comp.drift,
                 "neighbour overlap": comp.neighbour_overlap,
                 "chance overlap": comp.chance_overlap,
-                "top movers": ", ".join(f"{c} ({d:.2f})" for c, d in zip(top["category"], top["drift"], strict=True)
+                "moved beyond noise": comp.moved_beyond_noise if comp.noise_measured else None,
+                "top movers": ", ".join(f"{c} ({d:.2f}, {m})" for c, d, m in zip(top["category"], top["drift"],
+                                                                                  top["moved"], strict=True)
                                         if np.isfinite(d)),
+                "rare movers": ", ".join(f"{c} ({d:.2f}, n={n})" for c, d, n in zip(
+                    rare["category"], rare["drift"], rare["count_newer"], strict=True) if np.isfinite(d)),
             }
         )
     return pd.DataFrame(rows)

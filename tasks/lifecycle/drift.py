@@ -91,11 +91,14 @@ def _json_artifact(run_id: str, path: str) -> dict | None:
 
 
 def load_reference(name: str, alias: str = registry.PRODUCTION) -> Reference | None:
-    """The version ``alias`` points at, with its profile; None when the model or the alias does not exist."""
-    try:
-        loaded = registry.load_version(name, alias)
-    except registry.RegistryError:
+    """The version ``alias`` points at, with its profile; None when the model or the alias does not exist.
+
+    Only a real absence is None: a store that cannot be read raises ``RegistryUnavailable`` (retried by the
+    task), never "no production", which would train from scratch with new category ids and no drift check.
+    """
+    if registry.find_model(name) is None or registry.find_alias(name, alias) is None:
         return None
+    loaded = registry.load_version(name, alias)
     profile = _json_artifact(loaded.run_id, PROFILE_ARTIFACT)
     if profile is not None and profile.get("format") != PROFILE_FORMAT:
         profile = None
@@ -108,7 +111,7 @@ def load_reference(name: str, alias: str = registry.PRODUCTION) -> Reference | N
                      version_spec(loaded), data_columns)
 
 
-@task(name="production-reference", retries=2, retry_delay_seconds=2)
+@task(name="production-reference", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
 def load_reference_task(name: str, alias: str = registry.PRODUCTION) -> Reference | None:
     return load_reference(name, alias)
 

@@ -191,6 +191,7 @@ class GateResult:
     primary_metric: str
     data_fingerprint: str
     policy: dict[str, Any]
+    data_source: str = ""  # the spec's source (file or glob) the judged rows came from
 
     @property
     def failed(self) -> list[Check]:
@@ -297,7 +298,7 @@ def run_gate(
         rows=len(judged.frame), rows_note=f"{len(judged.frame):,} of {judged.held_out:,} held-out rows of the newest "
         f"data; " + "; ".join(judged.notes.values()),
         how=how, primary_metric=PRIMARY[spec.target.task], data_fingerprint=data_fingerprint,
-        policy=policy.model_dump(mode="json"),
+        policy=policy.model_dump(mode="json"), data_source=str(spec.source.path),
     )
 
 
@@ -326,6 +327,8 @@ def _network_checks(
     for label, version in versions.items():
         try:
             pred = network_predictions(version, rows)
+        except registry.RegistryUnavailable:
+            raise  # a store that cannot be read is not a network that cannot be loaded
         except Exception as exc:  # noqa: BLE001 - context only: a network that cannot be loaded is reported
             return [Check("network", "networks on the judged rows", None, f"could not be evaluated: {exc}")]
         if pred is None:

@@ -68,10 +68,9 @@ def record_stop_task(spec: Spec, report: DriftReport, fingerprint_sha: str) -> s
 
 def latest_same_input(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
     """The latest registered version when it was trained on this very data with this spec, else None."""
-    try:
-        versions = registry.list_versions(name)
-    except registry.RegistryError:
-        return None
+    if registry.find_model(name) is None:
+        return None  # nothing registered yet; a store that cannot be read raises instead
+    versions = [v for v in registry.list_versions(name) if not registry.is_incomplete(v)]
     if not versions:
         return None
     tags = versions[0].tags or {}
@@ -80,7 +79,7 @@ def latest_same_input(name: str, fingerprint_sha: str, spec_hash: str) -> ModelV
     return versions[0] if same else None
 
 
-@task(name="latest-same-input", retries=2, retry_delay_seconds=2)
+@task(name="latest-same-input", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
 def latest_same_input_task(name: str, fingerprint_sha: str, spec_hash: str) -> ModelVersion | None:
     return latest_same_input(name, fingerprint_sha, spec_hash)
 

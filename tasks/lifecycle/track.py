@@ -5,32 +5,35 @@ from __future__ import annotations
 import getpass
 import json
 import math
+import os
 import re
 import shutil
+import socket
+import tempfile
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-import mlflow
-import mlflow.pyfunc
 import pandas as pd
 import yaml
 from mlflow.entities import Metric, Param
 from prefect import task
+from prefect.cache_policies import NO_CACHE
 from prefect.transactions import get_transaction
 
 import entivec
 from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks.apply import lookup
-from entivec.tasks.apply.served import signature_for
-from entivec.tasks.lifecycle import registry
+from entivec.settings import project_home
+from entivec.tasks.lifecycle import lineage, registry
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
 MAX_PARAM_LENGTH = 500
+MODEL_ARTIFACT = "lookup_model"  # the registered pyfunc model's folder inside the train run
 # Read by MLflow, never imported here: importing it would declare the model as a side effect.
-LOOKUP_MODEL_CODE = Path(lookup.__file__).with_name("lookup_model_entry.py")
+# By path, not by importing the apply room: that would load torch into every command that only reads runs.
+LOOKUP_MODEL_CODE = Path(__file__).parents[1] / "apply" / "lookup_model_entry.py"
 
 
 def operator() -> str:
@@ -91,6 +94,8 @@ def record_run(
             f"{registry.TAG_PREFIX}data_fingerprint": fingerprint["sha256"],
             f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(),
             f"{registry.TAG_PREFIX}code_version": entivec.__version__,
+            # Lets a later command tell a run whose process died (left RUNNING by SIGKILL) from a live one.
+            registry.RUN_OWNER_TAG: f"{socket.gethostname()} {os.getpid()}",
         },
     )
     run_id = run.info.run_id
@@ -113,6 +118,7 @@ def record_run(
         for start in range(0, len(everything), 900):
             c.log_batch(run_id, metrics=everything[start : start + 900])
         c.set_tag(run_id, "mlflow.note.content", summary)
+        lineage.log_data_input(c, run_id, spec.source.path, fingerprint, spec.name, "training")
         c.log_artifacts(run_id, str(bundle))
     return run_id
 
@@ -120,32 +126,44 @@ def record_run(
 def register_version(
     *, spec: Spec, run_id: str, vector_set_folder: Path, version_tags: dict[str, str]
 ) -> str:
-    """Register the run's vector set as a new version of ``spec.name`` (as a pyfunc lookup model)."""
-    registry.client()
+    """Register the run's vector set as a new version of ``spec.name`` (as a pyfunc lookup model), intent first.
+
+    The lookup model is saved locally and logged into the run with the client, then the version is created
+    already tagged ``registering`` with all its tags in one call (``registry.create_version``); the flow marks
+    it complete once the alias and the history entry are written. No process-wide MLflow URI is set.
+    """
+    import mlflow.pyfunc
+
+    from entivec.tasks.apply.served import example_warnings_quiet, input_example_for, signature_for
+
     vector_set = VectorSet.load(vector_set_folder)
-    with mlflow.start_run(run_id=run_id):
-        info = mlflow.pyfunc.log_model(
-            name="lookup_model",
-            # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
-            python_model=str(LOOKUP_MODEL_CODE),
-            artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
-            signature=signature_for(vector_set),
-            pip_requirements=LOOKUP_REQUIREMENTS,
-            registered_model_name=spec.name,
-        )
-    version = str(info.registered_model_version)
     c = registry.client()
-    for key, value in version_tags.items():
-        c.set_model_version_tag(spec.name, version, key, value)
+    project_home().mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory(prefix="model-", dir=project_home()) as scratch:
+        model_dir = Path(scratch) / MODEL_ARTIFACT
+        with example_warnings_quiet():
+            mlflow.pyfunc.save_model(
+                path=str(model_dir),
+                # Models from code: MLflow stores this file and runs it at load time, so nothing is pickled.
+                python_model=str(LOOKUP_MODEL_CODE),
+                artifacts={registry.VECTOR_SET_ARTIFACT: str(vector_set_folder)},
+                signature=signature_for(vector_set),
+                input_example=input_example_for(vector_set),
+                pip_requirements=LOOKUP_REQUIREMENTS,
+            )
+        c.log_artifacts(run_id, str(model_dir), MODEL_ARTIFACT)
+    source = f"{c.get_run(run_id).info.artifact_uri.rstrip('/')}/{MODEL_ARTIFACT}"
+    version = registry.create_version(spec.name, source=source, run_id=run_id, tags=version_tags)
+    lineage.describe(c, spec.name, version, spec.description)
     return version
 
 
-@task(name="record-run", retries=2, retry_delay_seconds=2)
+@task(name="record-run", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
 def record_run_task(**kwargs) -> str:
     return record_run(**kwargs)
 
 
-@task(name="register-version")
+@task(name="register-version", cache_policy=NO_CACHE)
 def register_version_task(*, spec: Spec, run_id: str, vector_set_folder: Path, version_tags: dict[str, str]) -> str:
     version = register_version(
         spec=spec, run_id=run_id, vector_set_folder=vector_set_folder, version_tags=version_tags
@@ -159,11 +177,23 @@ def register_version_task(*, spec: Spec, run_id: str, vector_set_folder: Path, v
 
 @register_version_task.on_rollback
 def _unregister(transaction) -> None:
-    """Undo a registration whose later steps failed: no half-registered version stays behind."""
+    """Undo a registration whose later steps failed: no half-registered version stays behind.
+
+    When the store itself is gone the version stays tagged ``registering``; the next lifecycle command
+    removes it and records that in the history.
+    """
     version = transaction.get("version", None)
     name = transaction.get("name", None)
     if version and name:
-        registry.client().delete_model_version(name, version)
+        try:
+            registry.client().delete_model_version(name, version)
+        except registry.RegistryUnavailable:
+            pass
+
+
+@task(name="complete-version", retries=2, retry_delay_seconds=2, retry_condition_fn=registry.retry_on_unavailable)
+def complete_version_task(name: str, version: str) -> None:
+    registry.mark_complete(name, version)
 
 
 def write_spec_copy(spec: Spec, source_text: str | None, folder: Path) -> None:
@@ -180,13 +210,14 @@ def copy_into(src: Path, dst: Path) -> None:
     shutil.copy2(src, dst)
 
 
-RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "data_fingerprint", "user", "run_id", "note"]
+RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "verdict", "data_fingerprint", "user", "run_id", "note"]
 
 
 def run_log(name: str, limit: int = 50) -> pd.DataFrame:
     """The runs of a model's experiment, newest first: trains, skips ("no new data"), drift stops, gates, sweeps.
 
-    ``version`` is the registered version a train run became, if any. ``note`` is the first line of the run's
+    ``version`` is the registered version a train run became, or the candidate a gate run judged (``verdict``
+    pass, fail or forced). ``note`` is the first line of the run's
     note (its summary, or the reason nothing was trained). Versions tell what was made; this tells what was
     attempted, which is where a scheduled run that trained nothing leaves its trace.
     """
@@ -206,7 +237,9 @@ def run_log(name: str, limit: int = 50) -> pd.DataFrame:
             "started": datetime.fromtimestamp(run.info.start_time / 1000, UTC).isoformat(timespec="seconds"),
             "kind": tags.get(f"{registry.TAG_PREFIX}kind", ""),
             "status": run.info.status,
-            "version": by_run.get(run.info.run_id, ""),
+            # A gate run judged a candidate: its version and verdict are in the run's tags.
+            "version": by_run.get(run.info.run_id, tags.get(f"{registry.TAG_PREFIX}candidate_version", "")),
+            "verdict": tags.get(f"{registry.TAG_PREFIX}verdict", ""),
             "data_fingerprint": tags.get(f"{registry.TAG_PREFIX}data_fingerprint", "")[:12],
             "user": tags.get("mlflow.user", ""),
             "run_id": run.info.run_id,

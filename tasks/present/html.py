@@ -30,8 +30,9 @@ body{font-family:system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;mar
 color:#1d232a;line-height:1.45;padding:0 1em}
 h1{font-size:1.6em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}h2{font-size:1.25em;margin-top:1.8em}
 h3{font-size:1.05em}table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
-th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top}
-th{background:#f3f5f7}td.num{text-align:right;font-variant-numeric:tabular-nums}
+table{max-width:100%}th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top;
+overflow-wrap:anywhere}
+th{background:#f3f5f7;overflow-wrap:normal}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
 .verdict{font-size:1.15em;padding:.5em .8em;border-radius:6px;display:inline-block}
 .verdict.pass{background:#dafbe1}.verdict.fail{background:#ffebe9}
@@ -58,6 +59,8 @@ def image(data: bytes, alt: str) -> str:
 
 
 def _cell(value: Any) -> str:
+    if isinstance(value, (bool, np.bool_)):
+        return f"<td>{'yes' if value else 'no'}</td>"
     if isinstance(value, (float, np.floating)):
         text = "" if not np.isfinite(value) else f"{value:.6g}"
         return f'<td class="num">{text}</td>'
@@ -68,10 +71,28 @@ def _cell(value: Any) -> str:
     return f"<td>{esc(value)}</td>"
 
 
+# Column names of our tables as a reader says them; any other name has its underscores turned into spaces.
+HEADER_WORDS = {
+    "count_older": "training rows, older version", "count_newer": "training rows, newer version",
+    "drift": "drift (aligned distance / spread)", "categories_older": "categories, older version",
+    "categories_newer": "categories, newer version", "dimension_older": "vector length, older version",
+    "dimension_newer": "vector length, newer version", "added_share": "added (share)",
+    "dropped_share": "dropped (share)", "neighbour_overlap": "neighbour overlap", "chance_overlap": "overlap by chance",
+    "rmse": "RMSE", "mae": "MAE", "r2": "R²", "log_loss": "log loss", "roc_auc": "ROC AUC", "mse": "MSE",
+    "relative_spread": "relative spread", "in_all_folds": "in every fold", "from_version": "from version",
+    "to_version": "to version", "data_fingerprint": "data fingerprint", "state_note": "state note",
+}
+
+
+def header(name: object) -> str:
+    text = str(name)
+    return HEADER_WORDS.get(text, text.replace("_", " "))
+
+
 def table(frame: pd.DataFrame) -> str:
     if frame is None or frame.empty:
         return '<p class="muted">(nothing to show)</p>'
-    head = "".join(f"<th>{esc(c)}</th>" for c in frame.columns)
+    head = "".join(f"<th>{esc(header(c))}</th>" for c in frame.columns)
     body = "".join("<tr>" + "".join(_cell(v) for v in row) + "</tr>" for row in frame.itertuples(index=False))
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 

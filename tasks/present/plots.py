@@ -14,6 +14,7 @@ import pandas as pd  # noqa: E402
 
 from entivec.schemas.vocabulary import Vocabulary  # noqa: E402
 from entivec.tasks.lifecycle.bundle import BundleInputs  # noqa: E402
+from entivec.tasks.present.maps import axis_label, principal_axes  # noqa: E402
 
 
 def _save(fig, path: Path) -> Path:
@@ -51,18 +52,13 @@ def predicted_vs_actual(y_true: np.ndarray, y_pred: np.ndarray, task: str, path:
     return _save(fig, path)
 
 
-def project_2d(vectors: np.ndarray) -> np.ndarray:
-    """First two principal components (zero-padded for one-dimensional vectors)."""
-    centred = vectors - vectors.mean(axis=0)
-    if vectors.shape[1] == 1:
-        return np.hstack([centred, np.zeros_like(centred)])
-    _, _, vt = np.linalg.svd(centred, full_matrices=False)
-    return centred @ vt[:2].T
-
-
 def vector_map(vocabulary: Vocabulary, vectors: np.ndarray, path: Path, label_top: int = 25) -> Path:
-    """Known categories on their first two principal components, sized by count; the unknown row marked."""
-    points = project_2d(vectors)
+    """Known categories on their first two principal components (with the variance each explains), sized by
+    count; the unknown row marked."""
+    every = np.asarray(vectors, dtype=np.float64)
+    # axes of the known categories (the unknown row is drawn on them but does not shape them)
+    mean, axes, explained = principal_axes(every[1:] if len(every) >= 3 else every)
+    points = (every - mean) @ axes
     counts = np.asarray(vocabulary.counts, dtype=float)
     sizes = 6 + 60 * np.sqrt(counts / max(counts[1:].max(initial=1.0), 1.0))
     fig, ax = plt.subplots(figsize=(6.5, 5.5))
@@ -70,7 +66,9 @@ def vector_map(vocabulary: Vocabulary, vectors: np.ndarray, path: Path, label_to
     ax.scatter(points[0, 0], points[0, 1], marker="x", color="red", s=60, label="unknown (id 0)")
     for i in np.argsort(-counts[1:])[:label_top] + 1:
         ax.annotate(vocabulary.categories[i], points[i], fontsize=7, alpha=0.8)
-    ax.set(title=f"Vectors of '{vocabulary.column}' (first two principal components)", xlabel="PC1", ylabel="PC2")
+    ax.scatter([], [], s=20, alpha=0.6, color="C0", label="a category (area grows with its training rows)")
+    ax.set(title=f"Vectors of '{vocabulary.column}' (first two principal components)",
+           xlabel=axis_label(1, explained[0]), ylabel=axis_label(2, explained[1]))
     ax.legend(loc="best", fontsize=8)
     return _save(fig, path)
 

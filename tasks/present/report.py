@@ -31,10 +31,12 @@ from prefect.cache_policies import NO_CACHE  # noqa: E402
 
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
+from entivec.tasks.apply.outputs import write_text_atomically  # noqa: E402
 from entivec.tasks.lifecycle import audit, registry  # noqa: E402
 from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
 from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
 from entivec.tasks.lifecycle.gate import GateResult
+from entivec.tasks.lifecycle.lineage import gate_params, log_data_input
 from entivec.tasks.lifecycle.registry import run_file  # noqa: E402
 from entivec.tasks.lifecycle.track import (  # noqa: E402
     link_in_prefect,  # noqa: E402
@@ -42,6 +44,13 @@ from entivec.tasks.lifecycle.track import (  # noqa: E402
     operator,
 )
 from entivec.tasks.present.html import esc, facts, image, markdown, page, png_bytes, table  # noqa: E402
+from entivec.tasks.present.maps import (  # noqa: E402
+    RARE_ROWS,
+    axis_label,
+    principal_axes,
+    split_movers,
+    version_map,
+)
 
 GATE_FOLDER = "gate"
 _METRIC_UNSAFE = re.compile(r"[^A-Za-z0-9_.\- /]")  # characters MLflow refuses in a metric name
@@ -51,19 +60,9 @@ GATE_REPORT = "gate_report.html"
 # --- plots ------------------------------------------------------------------------------------------------------
 
 
-def _basis(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and first two principal axes (columns) of ``points``; zero-padded below two dimensions."""
-    mean = points.mean(axis=0)
-    _, _, vt = np.linalg.svd(points - mean, full_matrices=False)
-    axes = vt[:2].T
-    if axes.shape[1] < 2:
-        axes = np.hstack([axes, np.zeros((axes.shape[0], 2 - axes.shape[1]))])
-    return mean, axes
-
-
 def aligned_map(comp: ColumnComparison, older: str, newer: str, label_top: int = 12) -> bytes:
     """Both versions' shared categories on the older version's first two principal axes, newer aligned onto it."""
-    mean, axes = _basis(comp.older_shared)
+    mean, axes, explained = principal_axes(comp.older_shared)
     a = (comp.older_shared - mean) @ axes
     b = (comp.aligned_newer - mean) @ axes
     fig, ax = plt.subplots(figsize=(6.5, 5.5))
@@ -71,23 +70,24 @@ def aligned_map(comp: ColumnComparison, older: str, newer: str, label_top: int =
         ax.plot([a[i, 0], b[i, 0]], [a[i, 1], b[i, 1]], color="#9aa4ae", linewidth=0.7, zorder=1)
     ax.scatter(a[:, 0], a[:, 1], s=22, label=older, zorder=2)
     ax.scatter(b[:, 0], b[:, 1], s=22, marker="^", label=f"{newer} (aligned)", zorder=3)
-    top = set(comp.movers["category"].head(label_top))
+    top = set(split_movers(comp.movers)[0]["category"].head(label_top))
     for i, cat in enumerate(comp.shared):
         if cat in top or len(comp.shared) <= label_top:
             ax.annotate(cat, a[i], fontsize=7, color="#1f4e79")
             ax.annotate(cat, b[i], fontsize=6, color="#9a4a00", alpha=0.8)
-    ax.set(title=f"'{comp.column}': {older} and {newer} after Procrustes alignment", xlabel="PC1 of " + older,
-           ylabel="PC2 of " + older)
+    ax.set(title=f"'{comp.column}': {older} and {newer} after Procrustes alignment",
+           xlabel=axis_label(1, explained[0], older), ylabel=axis_label(2, explained[1], older))
     ax.legend(fontsize=8)
     return png_bytes(fig)
 
 
 def drift_bars(comp: ColumnComparison, top: int = 30) -> bytes:
-    movers = comp.movers.dropna(subset=["drift"]).head(top).iloc[::-1]
+    """The largest drifts of categories with at least RARE_ROWS training rows in both versions."""
+    movers = split_movers(comp.movers)[0].dropna(subset=["drift"]).head(top).iloc[::-1]
     fig, ax = plt.subplots(figsize=(6.5, max(2.0, 0.22 * len(movers) + 1.0)))
-    ax.barh(movers["category"].astype(str), movers["drift"])
+    ax.barh(movers["category"].astype(str), movers["drift"], label="drift of a category")
     ax.axvline(comp.drift, color="black", linestyle=":", label=f"column drift {comp.drift:.3f}")
-    ax.set(title=f"'{comp.column}': drift per category (largest {len(movers)})",
+    ax.set(title=f"'{comp.column}': largest drifts ({len(movers)}, each seen in {RARE_ROWS}+ rows in both)",
            xlabel="aligned distance / older spread")
     ax.legend(fontsize=8)
     return png_bytes(fig)
@@ -106,6 +106,18 @@ def bootstrap_plot(interval: PairedInterval, margin: float, title: str) -> bytes
     ax.set(title=title, xlabel="loss reduction, % of the reference's mean loss", ylabel="resamples")
     ax.legend(fontsize=8)
     return png_bytes(fig)
+
+
+def movers_sections(column: str, comp: ColumnComparison, top: int) -> list[str]:
+    """Top movers among categories seen often enough in both versions; the rare ones listed apart."""
+    common, rare = split_movers(comp.movers)
+    parts = [f"<h3>Top movers of '{esc(column)}' (categories with {RARE_ROWS}+ training rows in both versions)</h3>",
+             table(common.head(top))]
+    if len(rare):
+        parts.append(f'<p class="muted">{len(rare)} rare categories (fewer than {RARE_ROWS} training rows in either '
+                     "version) are listed apart: their movement is mostly noise.</p>")
+        parts.append(table(rare.head(top)))
+    return parts
 
 
 # --- the gate's evidence ----------------------------------------------------------------------------------------
@@ -150,8 +162,7 @@ def gate_sections(result: GateResult, plots: dict[str, bytes], *, heading: str =
         rows = [comp.summary(top=0) for comp in result.comparisons.values()]
         parts.append(table(pd.DataFrame(rows).drop(columns=["top_movers"])))
         for col, comp in result.comparisons.items():
-            parts.append(f"<h3>Top movers of '{esc(col)}'</h3>")
-            parts.append(table(comp.movers.head(int(result.policy.get("top_movers", 10)))))
+            parts += movers_sections(col, comp, int(result.policy.get("top_movers", 10)))
             for name in (_plot_name("aligned", col), _plot_name("drift", col)):
                 if name in plots:
                     parts.append(image(plots[name], name))
@@ -193,7 +204,9 @@ def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bo
         for col, comp in result.comparisons.items():
             if np.isfinite(comp.drift):
                 metrics.append(Metric("drift_" + _METRIC_UNSAFE.sub("_", col), comp.drift, stamp, 0))
-        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)])
+        c.log_batch(run_id, metrics=[m for m in metrics if np.isfinite(m.value)], params=gate_params(result.policy))
+        log_data_input(c, run_id, result.data_source or spec_path, {"sha256": result.data_fingerprint,
+                       "rows": result.rows}, result.name, "evaluation")
         project_home().mkdir(parents=True, exist_ok=True)
         with tempfile.TemporaryDirectory(prefix="gate-", dir=project_home()) as scratch:
             _write_gate_folder(result, Path(scratch), verdict=verdict, by=by, reason=reason, spec_path=spec_path)
@@ -266,6 +279,7 @@ def version_report_html(name: str, version: str) -> str:
          "norm median": float(np.median(np.linalg.norm(vs.vectors[col][1:], axis=1))) if vs.vocabularies[col].size > 1
          else float("nan")}
         for col in vs.columns]))]
+    body += _vector_sections(name, number, vs)
     summary = _text_artifact(mv.run_id, "summary.md")
     if summary:
         body += ["<h2>Train run summary</h2>", markdown(summary)]
@@ -288,6 +302,28 @@ def version_report_html(name: str, version: str) -> str:
     body += ["<h2>Alias moves involving this version</h2>",
              table(audit.history_frame(entries).drop(columns=["evidence_run"]))]
     return page(f"{name} version {number}", body)
+
+
+def _vector_sections(name: str, number: str, vs) -> list[str]:
+    """Per column: a map with the categories new since production ringed, and the confidence figures if any."""
+    production = registry.aliases_of(name).get(registry.PRODUCTION)
+    other = registry.load_version(name, production).vector_set if production and production != number else None
+    parts = ["<h2>Maps of the vectors</h2>"]
+    if other is None:
+        parts.append('<p class="muted">No other production version to mark new categories against.</p>')
+    for col in vs.columns:
+        vocab = vs.vocabularies[col]
+        new = set(vocab.categories[1:]) - set(other.vocabularies[col].categories[1:]) \
+            if other is not None and col in other.vocabularies else set()
+        parts.append(image(version_map(vocab, vs.vectors[col], new=new, against=f"production v{production}"),
+                           f"map of {col}"))
+        confidence = vs.confidence.get(col)
+        if confidence is not None and len(confidence) > 1:
+            known = confidence.iloc[1:]
+            parts.append(f"<h3>How well the vectors of '{esc(col)}' are determined (least first)</h3>")
+            parts.append(table(known.sort_values("relative_spread", ascending=False, na_position="first")
+                               .drop(columns=["id"]).head(10)))
+    return parts
 
 
 def _without_credentials(uri: str) -> str:
@@ -349,8 +385,7 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
     number = str(mv.version)
     text = version_report_html(name, number)
     path = Path(out) if out else project_home() / "reports" / name / f"version-{number}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
+    write_text_atomically(path, text, "the report")  # all or nothing, mode per umask
     with tempfile.TemporaryDirectory(prefix="report-", dir=project_home()) as scratch:
         staged = Path(scratch) / VERSION_REPORT  # the artifact's name is fixed, whatever ``out`` is called
         staged.write_text(text, encoding="utf-8")
@@ -390,11 +425,11 @@ def diff_html(
         body.append(f"<h2>'{esc(col)}'</h2>")
         changes = []
         if comp.added:
-            changes.append(f"added ({len(comp.added)}): {', '.join(comp.added[:50])}")
+            changes.append(f"new in version {newer} ({len(comp.added)}): {', '.join(comp.added[:50])}")
         if comp.dropped:
             changes.append(f"dropped ({len(comp.dropped)}): {', '.join(comp.dropped[:50])}")
         body.append(f"<p>{esc('; '.join(changes) or 'same categories in both')}</p>")
-        body.append(table(comp.movers.head(15)))
+        body += movers_sections(col, comp, 15)
         if len(comp.shared) >= 2:
             body.append(image(aligned_map(comp, f"v{older}", f"v{newer}"), f"aligned map of {col}"))
             body.append(image(drift_bars(comp), f"drift of {col}"))

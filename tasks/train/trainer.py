@@ -192,6 +192,26 @@ def default_threads(cardinalities: list[int], sizes: list[int], n_dense: int, hi
 _TWO_THREAD_MACS = 60_000
 
 
+MIN_EPOCHS = 30
+MAX_EPOCHS = 2_000
+
+
+def epoch_budget(training: TrainingSpec, train_rows: int) -> int:
+    """Epochs a run may take: ``training.epochs`` when the spec sets it, else enough for ``training.step_budget``
+    optimizer steps, at least MIN_EPOCHS (the former fixed cap) and at most MAX_EPOCHS.
+
+    A fixed epoch cap gives a small table few optimizer steps: 7,000 rows at batch 1,024 make 6 steps an epoch,
+    so 30 epochs were 180 steps and ended before early stopping did (best epoch = last epoch). Tying the budget
+    to steps gives every table about the same number of updates; early stopping (``patience``) still ends the
+    run when the validation loss stops falling, so the budget is an upper bound, not the usual length. Tables of
+    200,000 rows and more keep the former 30-epoch cap (6,000 steps are fewer than 30 of their epochs).
+    """
+    if training.epochs is not None:
+        return training.epochs
+    steps_per_epoch = math.ceil(max(train_rows, 1) / min(training.batch_size, max(train_rows, 1)))
+    return int(min(MAX_EPOCHS, max(MIN_EPOCHS, math.ceil(training.step_budget / steps_per_epoch))))
+
+
 @contextmanager
 def _torch_state(threads: int, seed: int) -> Iterator[None]:
     """Seed, thread count and deterministic algorithms for one training run; the caller's state comes back."""
@@ -317,10 +337,10 @@ def fit_network(
     """Train the network and return it with its vectors and per-epoch history.
 
     ``y`` is on the transformed scale (regression) or 0/1 (binary). Without ``valid``, a seeded
-    ``training.validation_fraction`` of the rows is held out for early stopping. Training stops after
-    ``training.patience`` epochs without a lower validation loss, and the weights of the best epoch are
-    restored. ``init_vectors`` warm-starts tables column by column (rows beyond a given matrix keep their
-    random start, so a vocabulary that grew still trains its new rows).
+    ``training.validation_fraction`` of the rows is held out for early stopping. Training runs at most
+    ``epoch_budget`` epochs and stops after ``training.patience`` epochs without a lower validation loss; the
+    weights of the best epoch are restored. ``init_vectors`` warm-starts tables column by column (rows beyond a
+    given matrix keep their random start, so a vocabulary that grew still trains its new rows).
     """
     started = time.perf_counter()
     if task not in ("regression", "binary"):
@@ -474,6 +494,7 @@ def _train_loop(
     history: list[dict] = []
     interactive = training.progress and sys.stdout.isatty()
     batches_per_epoch = math.ceil(n / batch)
+    epochs = epoch_budget(training, n)
     embedded = offsets[-1]
     width = embedded + train.dense.shape[1]
     passes = _Passes(model, batch, embedded, width)
@@ -481,8 +502,8 @@ def _train_loop(
     data = None
     try:
         with _progress(interactive) as bar, torch.no_grad():
-            bar_task = bar.add_task(label, total=training.epochs * batches_per_epoch, status="")
-            for epoch in range(1, training.epochs + 1):
+            bar_task = bar.add_task(label, total=epochs * batches_per_epoch, status="")
+            for epoch in range(1, epochs + 1):
                 tick = time.perf_counter()
                 model.train()
                 data = train.permuted(torch.randperm(n, generator=shuffler), into=data)
