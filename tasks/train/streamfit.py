@@ -3,8 +3,9 @@
 What differs from :func:`trainer.fit_network` is only where rows come from. Each epoch reads the memory-mapped
 training arrays in a seeded random order of blocks with a shuffle inside each block (``WorkingSet.blocks``), so
 memory holds one block, the network and the validation rows. Early stopping uses a seeded sample of the
-training rows, at most ``max_valid_rows`` of them (held out of training), instead of a share of all rows: a
-validation loss on a million rows is as steady as on ten million. Optimizers, the hand-written passes, the
+training rows, at most ``max_valid_rows`` (250,000) of them, held out of training, instead of a share of all
+rows: the mean loss of 250,000 rows has a standard error of 0.2% of the loss's own spread, steady enough to tell
+epochs apart, and a share of 100 M rows would hold 15 M rows in memory. Optimizers, the hand-written passes, the
 loss and the evaluation are the trainer's.
 """
 
@@ -64,7 +65,7 @@ def _target_scale(y: np.ndarray, skip: np.ndarray, block: int = 1 << 22) -> tupl
 
 def fit_from_working_set(
     ws: WorkingSet, *, columns: list[str], cardinalities: list[int], sizes: list[int], training: TrainingSpec,
-    task: str, block_rows: int = BLOCK_ROWS, max_valid_rows: int = 1_000_000,
+    task: str, block_rows: int = BLOCK_ROWS, max_valid_rows: int = 250_000,
 ) -> TrainResult:
     """Train the network on the working set's training rows; the same result type as ``fit_network``."""
     started = time.perf_counter()
