@@ -40,6 +40,7 @@ from entivec.tasks.ingest.read import (
     file_batches,
     source_files,
 )
+from entivec.tasks.ingest.workdir import size_on_disk
 
 PARTITIONS = 64
 CLEANED = "cleaned.arrow"  # Arrow IPC: written and read back fast, columns memory-mapped on demand
@@ -67,6 +68,14 @@ class StreamedTable:
     @property
     def quarantine(self) -> Path:
         return self.folder / QUARANTINE
+
+    def summary(self) -> list[str]:
+        """One line per stage with its time and rows per second, then the working folder's size on disk."""
+        rows = self.ledger.rows_in
+        lines = [f"{stage}: {rows:,} rows in {seconds:.1f} s ({rows / seconds:,.0f} rows/s)"
+                 for stage, seconds in self.seconds.items() if seconds > 0]
+        lines.append(f"working set: {size_on_disk(self.folder) / 2**30:.2f} GiB on disk in {self.folder}")
+        return lines
 
 
 def batches(spec: Spec, source: SourceFiles, batch_rows: int) -> object:
