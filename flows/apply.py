@@ -57,9 +57,9 @@ def log_report(result: ApplyResult) -> None:
 
 def report_markdown(result: ApplyResult) -> str:
     lines = [
-        f"**{result.model_name}** version **{result.version}** (run `{result.run_id}`"
+        f"**{result.model_name}** version **{result.version}** (run `{result.run_id}`)"
         + (f", aliases {', '.join(result.aliases)}" if result.aliases else "")
-        + f"), unknown-category rule `{result.unknown}`"
+        + f", unknown-category rule `{result.unknown}`"
         + (f", trained on data `{result.data_fingerprint[:12]}`" if result.data_fingerprint else ""),
         "",
         f"{result.input_path} -> {result.output_path}: {result.rows:,} rows in {result.chunks} chunk(s), "

@@ -251,6 +251,14 @@ def test_cli_apply(store, tmp_path, prefect_server):
     (tmp_path / "a-file").write_text("")
     blocked = runner.invoke(app, ["export", store.name, "1", "--out", str(tmp_path / "a-file" / "vectors")])
     assert blocked.exit_code == 2 and "cannot write the export" in blocked.output, blocked.output
+    exported = runner.invoke(app, ["export", store.name, "staging", "--out", str(tmp_path / "exported")])
+    assert exported.exit_code == 0, exported.output
+    from entivec.tasks.lifecycle import registry
+
+    manifest = json.loads((tmp_path / "exported" / "manifest.json").read_text())
+    staged = registry.resolve(store.name, "staging")
+    assert (manifest["model_name"], manifest["version"], manifest["run_id"]) == (store.name, "2", staged.run_id)
+    assert manifest["aliases_at_export"] == ["staging"]
 
 
 # --- the shared lookup ---------------------------------------------------------------------------------------

@@ -340,3 +340,4 @@ def test_any_csv_for_people_gets_the_same_guard():
     assert frame["by"].tolist() == ["@ops", "a.person", "-"]  # the caller's frame is left alone
     rows = list(csv.reader(safe.to_csv(index=False).splitlines()))  # Python's csv module reads it back
     assert [r[3] for r in rows[1:]] == ["'@ops", "a.person", "'-"]
+

@@ -158,7 +158,7 @@ def test_real_model_server_returns_the_same_vectors(store, served):
     assert status == 400 and "column 'color': 1 of 200" in answer["message"] and "'Q'" in answer["message"]
 
 
-def test_registration_logs_an_input_example_and_the_spec_description(store, tmp_path):
+def test_registration_logs_an_input_example_and_the_spec_description(store, tmp_path, monkeypatch):
     """No 'input example was not provided' warning per registration (MLflow's own warning text), the example
     runs through the loaded model, and the spec's description reaches the registered model and its version."""
     import warnings
@@ -188,6 +188,7 @@ def test_registration_logs_an_input_example_and_the_spec_description(store, tmp_
                 or "range is deprecated" in str(w.message)]
     assert c.get_registered_model(name).description == description
     assert c.get_model_version(name, version).description == description
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", c.uri)  # entivec sets no process-wide URI; a user names the store
     model = mlflow.pyfunc.load_model(f"models:/{name}/{version}")
     example = model.input_example
     assert list(example.columns) == ["clarity", "color", "cut"] and len(example) == 2

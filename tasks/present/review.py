@@ -26,6 +26,7 @@ from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import category_strings
 from entivec.settings import project_home
+from entivec.tasks.apply.outputs import write_text_atomically
 from entivec.tasks.evidence.align import align_to
 from entivec.tasks.lifecycle import registry
 from entivec.tasks.lifecycle.track import link_in_prefect, now_iso, operator
@@ -302,8 +303,7 @@ def publish_review_page(name: str, version: str, out: str | Path | None = None) 
     number = str(mv.version)
     text = review_page_html(name, number)
     path = Path(out) if out else project_home() / "reports" / name / f"review-{number}.html"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
+    write_text_atomically(path, text, "the review page")  # all or nothing, mode per umask
     with tempfile.TemporaryDirectory(prefix="review-", dir=project_home()) as scratch:
         staged = Path(scratch) / REVIEW_PAGE
         staged.write_text(text, encoding="utf-8")
