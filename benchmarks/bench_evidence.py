@@ -12,8 +12,11 @@ Stage table (the train flow's steps called as plain functions, in the flow's ord
                      out-of-fold vectors, and the leaky in-sample contrast) on the seeded downstream sample
                      (evaluation.max_train_rows), scored on the seeded test sample (evaluation.max_test_rows),
                      with the paired bootstrap intervals
-Each line prints its wall time, the load average and the CPU pressure (Linux PSI, share of time a task waited
-for a CPU) measured when it ended; the last line is evaluation / training.
+  seed check         a second network on the same rows with another seed (evaluation.seed_check), printed apart:
+                     it is not part of the evaluation the ratio covers, and doubles the training when on
+Each line prints its wall time, its CPU time (this process: on a shared machine the wall time of one stage swings
+by half with other people's jobs, the CPU time of single-threaded work far less), the load average and the CPU
+pressure (Linux PSI, share of time a task waited for a CPU) measured when it ended; then evaluation / training.
 
 --models times the downstream model settings that were candidates (tree counts, threads) on the downstream sample
 of the same table, once on a quiet machine and once while one busy process (a spinning child started here) holds
@@ -45,6 +48,7 @@ from entivec.schemas.vocabulary import Vocabulary  # noqa: E402
 from entivec.tasks.evidence.confidence import FoldSpread, confidence_tables  # noqa: E402
 from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids  # noqa: E402
 from entivec.tasks.evidence.downstream import capped_rows, compare_downstream  # noqa: E402
+from entivec.tasks.evidence.stability import seed_stability  # noqa: E402
 from entivec.tasks.train.encoder import FeatureEncoder  # noqa: E402
 from entivec.tasks.train.network import predict  # noqa: E402
 from entivec.tasks.train.trainer import fit_network  # noqa: E402
@@ -105,16 +109,16 @@ def stages(args) -> None:
           f"{ev.max_train_rows:,}, test sample {ev.max_test_rows:,}, folds {ev.folds}, models {ev.models}")
     print(f"start: {load()}", flush=True)
 
-    times = {}
-    start = time.perf_counter()
+    times, cpu = {}, {}
+    start, c0 = time.perf_counter(), time.process_time()
     result = fit_network(train_inputs, y_train, columns=spec.embed_names, cardinalities=cards, sizes=sizes,
                          training=spec.training, task="regression")
     pred = predict(result.model, test_inputs, "regression")
-    times["train vectors"] = time.perf_counter() - start
-    print(f"train vectors       {times['train vectors']:8.1f} s   ({len(result.history)} epochs, best "
-          f"{result.best_epoch}; {load()})", flush=True)
+    times["train vectors"], cpu["train vectors"] = time.perf_counter() - start, time.process_time() - c0
+    print(f"train vectors       {times['train vectors']:8.1f} s wall {cpu['train vectors']:8.1f} s cpu   "
+          f"({len(result.history)} epochs, best {result.best_epoch}; {load()})", flush=True)
 
-    start = time.perf_counter()
+    start, c0 = time.perf_counter(), time.process_time()
     fold_rows = capped_rows(len(train_rows), ev.max_fold_rows, ev.seed)
     picked = capped_rows(len(fold_rows), ev.max_train_rows, ev.seed)
     rows = fold_rows[picked]
@@ -123,21 +127,37 @@ def stages(args) -> None:
     oof = cross_fit_vectors(train_inputs.take(fold_rows), y_train[fold_rows], spec, cards, sizes, result.vectors,
                             spread=spread, keep=picked)
     confidence_tables(spread, vocabularies, result.vectors)
-    times["fold networks"] = time.perf_counter() - start
-    print(f"fold networks       {times['fold networks']:8.1f} s   ({load()})", flush=True)
+    times["fold networks"], cpu["fold networks"] = time.perf_counter() - start, time.process_time() - c0
+    print(f"fold networks       {times['fold networks']:8.1f} s wall {cpu['fold networks']:8.1f} s cpu   "
+          f"({load()})", flush=True)
 
-    start = time.perf_counter()
+    start, c0 = time.perf_counter(), time.process_time()
     evidence = compare_downstream(
         train_rows.iloc[rows], test_rows.iloc[tested], spec, vectors_oof=oof,
         vectors_in_sample=vectors_for_ids(train_inputs.cat_ids[rows], result.vectors, spec.embed_names),
         vectors_test=vectors_for_ids(test_inputs.cat_ids[tested], result.vectors, spec.embed_names),
         network_test_pred=pred[tested], n_available=len(train_rows), n_test_available=len(test_rows),
     )
-    times["downstream models"] = time.perf_counter() - start
-    print(f"downstream models   {times['downstream models']:8.1f} s   ({load()})", flush=True)
+    times["downstream models"], cpu["downstream models"] = time.perf_counter() - start, time.process_time() - c0
+    print(f"downstream models   {times['downstream models']:8.1f} s wall {cpu['downstream models']:8.1f} s cpu   "
+          f"({load()})", flush=True)
     evaluation = times["fold networks"] + times["downstream models"]
-    print(f"evaluation total    {evaluation:8.1f} s   evaluation / training = "
-          f"{evaluation / times['train vectors']:.2f}")
+    evaluation_cpu = cpu["fold networks"] + cpu["downstream models"]
+    print(f"evaluation total    {evaluation:8.1f} s wall {evaluation_cpu:8.1f} s cpu   evaluation / training = "
+          f"{evaluation / times['train vectors']:.2f} (wall), {evaluation_cpu / cpu['train vectors']:.2f} (cpu)",
+          flush=True)
+
+    start = time.perf_counter()  # the seed check (evaluation.seed_check): a second network, another seed
+    reseeded = fit_network(train_inputs, y_train, columns=spec.embed_names, cardinalities=cards, sizes=sizes,
+                           training=spec.training.model_copy(update={"seed": spec.training.seed + 1_000}),
+                           task="regression")
+    stability = seed_stability(vocabularies, result.vectors, reseeded.vectors)
+    times["seed check"] = time.perf_counter() - start
+    print(f"seed check          {times['seed check']:8.1f} s   ({load()}); with it, evaluation / training = "
+          f"{(evaluation + times['seed check']) / times['train vectors']:.2f}")
+    for col, figures in stability.items():
+        print(f"  {col}: seed overlap {figures['seed_neighbour_overlap']:.3f} (chance "
+              f"{figures['seed_chance_overlap']:.3f}), aligned distance {figures['seed_aligned_distance']:.3f}")
     print()
     print(evidence.summary)
 

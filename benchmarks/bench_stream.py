@@ -111,9 +111,11 @@ def _child(mode: str, data: str, home: str) -> dict:
         with working_set("bench") as folder:
             streamed = stream_clean(spec, spec_path, folder)
             stages.update(streamed.seconds)
+            out["peak_after"] = {"ingestion": _peak()}
             tick = time.perf_counter()
             ws, vocabularies, _ = build_working_set(streamed, spec)
             stages["working set"] = time.perf_counter() - tick
+            out["peak_after"]["working set"] = _peak()
             tick = time.perf_counter()
             rows = sum(len(block[2]) for block in ws.blocks("train", 1 << 18, seed=0))
             stages["one shuffled pass"] = time.perf_counter() - tick
@@ -153,6 +155,10 @@ def _child(mode: str, data: str, home: str) -> dict:
     return out
 
 
+def _peak() -> int:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
 def _fit(how: str, ws, spec, vocabularies, epochs: int):
     import torch
 
@@ -184,6 +190,7 @@ def main() -> None:
     parser.add_argument("--rows", type=int, nargs="+", default=[1_000_000, 10_000_000])
     parser.add_argument("--whole-max", type=int, default=1_000_000)
     parser.add_argument("--folder", type=Path, default=None, help="where the tables go (default: a temp folder)")
+    parser.add_argument("--no-fit", action="store_true", help="skip the trainer comparison")
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -218,6 +225,8 @@ def main() -> None:
                                                        for m in modes))
         print("  load while running         " + "".join(f"{results[m][2]:>24.1f}  " for m in modes))
         stream = results["stream"][0]
+        print("  stream peak RSS after      " + ", ".join(f"{k}: {v / gib:.2f} GiB"
+                                                        for k, v in stream["peak_after"].items()))
         print(f"  working set on disk: {stream['working_set_bytes'] / gib:.2f} GiB; rows used {stream['rows_used']:,}")
         if "whole" in results:
             ratio = stream["data_path_peak_rss_bytes"] / results["whole"][0]["data_path_peak_rss_bytes"]
@@ -228,6 +237,8 @@ def main() -> None:
         for rows, peak in sorted(peaks.items()):
             print(f"stream peak RSS at {rows:,} rows / at {smallest:,} rows: {peak / peaks[smallest]:.2f} "
                   f"(target <= 1.3 at 10 M; <= 4 GiB at 100 M: {peak / gib:.2f} GiB)")
+    if args.no_fit:
+        return
     smallest = min(args.rows)
     fit, _, load = run_child("fit", folder / f"deliveries-{smallest}.parquet",
                              Path(tempfile.mkdtemp(prefix="home-fit-", dir=folder)))

@@ -24,7 +24,7 @@ from entivec.tasks.lifecycle import audit, checks, gate, registry, track
 from entivec.tasks.lifecycle.compare import ColumnComparison, columns_of, compare_vector_sets, comparison_table
 from entivec.tasks.lifecycle.rows import spec_for, unseen_rows
 from entivec.tasks.lifecycle.track import now_iso, operator
-from entivec.tasks.present import report
+from entivec.tasks.present import report, review
 
 
 class LifecycleError(registry.RegistryError):
@@ -161,6 +161,11 @@ def promote(
         get_run_logger().warning("version report not written (%s); run `entivec report %s %s`", exc, name,
                                  result.candidate_version)
         report_path, link = "(not written)", ""
+    try:  # the review page again, now with this gate's figures
+        review.publish_review_page_task(name, result.candidate_version)
+    except Exception as exc:  # noqa: BLE001 - as above: the verdict stands; `entivec review` redoes the page
+        get_run_logger().warning("review page not written (%s); run `entivec review %s %s`", exc, name,
+                                 result.candidate_version)
     track.markdown_in_prefect(
         f"{name}-gate-v{candidate.version}", _gate_markdown(result, forced, who, reason, link),
         f"promotion gate of {name} version {candidate.version}",

@@ -236,7 +236,8 @@ def sweep(spec_path: str, candidates: list[str] | None = None) -> SweepOutcome:
     cardinalities = [card[c] for c in columns]
     plans = plan_candidates(list(candidates or DEFAULT_CANDIDATES), spec, card)
 
-    rows = capped_rows(len(train_rows), spec.evaluation.max_train_rows, spec.evaluation.seed)
+    # The fold networks train on the fold sample; the downstream models take their own sample of it.
+    rows = capped_rows(len(train_rows), spec.evaluation.max_fold_rows, spec.evaluation.seed)
     subset, y_subset = train_inputs.take(rows), y_train[rows]
     # The same folds out_of_fold_vectors makes (same splitter, seed and rows), so every candidate's folds can be
     # submitted before any result is awaited.

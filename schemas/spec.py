@@ -237,11 +237,13 @@ class TrainingSpec(_Strict):
 
 
 class EvaluationSpec(_Strict):
-    # Defaults chosen by measurement (benchmarks/bench_evidence.py, README "What the evidence costs"): on a
-    # 1 M-row table the evaluation costs no more than the vector training. Three folds of a 150,000-row sample
-    # cost 300,000 network rows per epoch against 800,000 for five folds of 200,000; histogram gradient boosting
-    # fitted 20,000 rows in 1.5 s where a 100-tree random forest took 19-25 s with a worse RMSE; the linear
-    # model adds a second, cheap model family. Random forest stays available by name.
+    # Defaults chosen by measurement (benchmarks/bench_evidence.py, README "Measurements"): on a 1 M-row table
+    # the evaluation costs no more than the vector training. Three folds of a 100,000-row sample cost 200,000
+    # network rows per epoch against 800,000 for five folds of 200,000; histogram gradient boosting fitted
+    # 20,000 rows in 1.5 s where a 100-tree random forest took 19-25 s with a worse RMSE; the linear model adds
+    # a second, cheap model family (random forest stays available by name). With 20,000 downstream and 50,000
+    # test rows the downstream models alone took 38 s against 49 s of training, hence 10,000 and 20,000 (and
+    # native categorical splits for gradient boosting's one-hot set, tasks/evidence/downstream.py).
     folds: Annotated[int, Field(ge=2, le=20)] = 3
     models: Annotated[list[Literal["random_forest", "hist_gradient_boosting", "linear"]], Field(min_length=1)] = [
         "hist_gradient_boosting",
@@ -250,9 +252,9 @@ class EvaluationSpec(_Strict):
     onehot_max_categories: Annotated[int, Field(ge=2)] = 64
     # Rows the downstream models train on (a seeded sample of the training rows) and are scored on (of the test
     # rows), and rows the fold networks train on: caps, so the evidence stops growing with the table.
-    max_train_rows: Annotated[int, Field(ge=100)] | None = 20_000
-    max_test_rows: Annotated[int, Field(ge=100)] | None = 50_000
-    max_fold_rows: Annotated[int, Field(ge=100)] | None = 150_000
+    max_train_rows: Annotated[int, Field(ge=100)] | None = 10_000
+    max_test_rows: Annotated[int, Field(ge=100)] | None = 20_000
+    max_fold_rows: Annotated[int, Field(ge=100)] | None = 100_000
     # Train a second network on the same rows with another seed and log how far the two agree per column
     # (tasks/evidence/stability.py): how much of a version-to-version change a reseed alone makes.
     seed_check: bool = True

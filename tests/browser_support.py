@@ -43,13 +43,14 @@ class OpenedPage:
         return self.page.eval_on_selector_all("img", "els => els.map(e => e.complete ? e.naturalWidth : 0)")
 
     def overflowing_tables(self) -> list[str]:
-        """Tables whose right edge passes their container's, or whose container must scroll sideways."""
+        """Tables that stick out of their container's content box (its padding does not count as room)."""
         return self.page.eval_on_selector_all(
             "table",
             """els => els.filter(t => {
-                const box = t.parentElement.getBoundingClientRect(), own = t.getBoundingClientRect();
-                return own.right > box.right + 1 || t.parentElement.scrollWidth > t.parentElement.clientWidth + 1;
-            }).map(t => (t.querySelector('th') || t).textContent.slice(0, 60))""",
+                const parent = t.parentElement, box = parent.getBoundingClientRect(), own = t.getBoundingClientRect();
+                const style = getComputedStyle(parent);
+                return own.right > box.right - parseFloat(style.paddingRight) - parseFloat(style.borderRightWidth) + 1;
+            }).map(t => Array.from(t.querySelectorAll('th')).map(h => h.textContent).join(' | ').slice(0, 80))""",
         )
 
 

@@ -59,6 +59,10 @@ def test_train_promote_refuse_force_rollback_history_diff_report(tmp_path, run_c
     assert code == 0, out
     assert "by force: the gate failed" in out
     assert registry.aliases_of(MODEL)["production"] == "3"
+    # Each gate wrote version 3's review page again: the logged page carries both gates' verdicts.
+    review_run = registry.client().get_model_version(MODEL, "3").run_id
+    review_page = registry.run_file(review_run, "review/review.html").read_text(encoding="utf-8")
+    assert "Gate of" in review_page and "FAIL" in review_page and "FORCED" in review_page
 
     code, out = run_cli(["rollback", MODEL, "--reason", "forced version misbehaves", "--by", "ana"])
     assert code == 0, out

@@ -210,6 +210,24 @@ def test_review_page_in_a_browser(entivec_home, browser, monkeypatch, tmp_path):
     assert OpenedPage(page).overflowing_tables() == []
     page.close()
 
+    # as MLflow's artifact view shows an HTML artifact: from a blob URL in an iframe sandboxed to scripts only
+    framed = browser.new_page()
+    errors = []
+    framed.on("console", lambda msg: errors.append(msg.text) if msg.type == "error" else None)
+    framed.set_content('<iframe id="view" sandbox="allow-scripts" width="1200" height="900"></iframe>')
+    framed.evaluate("html => { document.getElementById('view').src = "
+                    "URL.createObjectURL(new Blob([html], {type: 'text/html'})); }",
+                    Path(published.path).read_text(encoding="utf-8"))
+    framed.wait_for_function("document.getElementById('view').contentWindow.length !== undefined")
+    inner = framed.frame_locator("#view")
+    inner.locator("#column").select_option(label="color")
+    inner.locator("#search").fill("E")
+    inner.locator("#search").press("Enter")
+    inner.locator("#neighbours tbody tr").first.wait_for()
+    assert inner.locator("#neighbours tbody tr").count() == k
+    assert errors == []
+    framed.close()
+
 
 @pytest.mark.integration
 def test_fifty_thousand_categories_load_and_stay_usable(browser, tmp_path):
@@ -299,14 +317,29 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
     import entivec_test_vector_fixtures as vf
 
     from entivec.flows.lifecycle import diff_versions, write_diff_html
+    from entivec.tasks.present.maps import RARE_ROWS
     from entivec.tasks.present.report import publish_version_report
 
     store = vf.register_two_versions(entivec_home)  # v1 production, v2 staging
-    version, _ = _third_version(entivec_home, store.frame, monkeypatch)
+    version, vs = _third_version(entivec_home, store.frame, monkeypatch)
+
+    # a seed-stability file as train runs log it; figures here: version 1 against version 3 (compare module)
+    from entivec.tasks.lifecycle import registry
+    from entivec.tasks.lifecycle.compare import compare_vector_sets
+
+    figures = {col: {"seed_neighbour_overlap": c.neighbour_overlap, "seed_chance_overlap": c.chance_overlap,
+                     "seed_aligned_distance": c.drift, "seed_categories": float(len(c.shared))}
+               for col, c in compare_vector_sets(store.v1, vs).items()}
+    (tmp_path / "evidence").mkdir()
+    (tmp_path / "evidence" / "seed_stability.json").write_text(json.dumps(figures))
+    run_id = registry.resolve(vf.MODEL, version).run_id
+    registry.client().log_artifact(run_id, str(tmp_path / "evidence" / "seed_stability.json"), "evidence")
 
     report = publish_version_report(vf.MODEL, version, tmp_path / "version.html").path
+    assert "aligned distance between seeds" in report.read_text(encoding="utf-8")
     diff = write_diff_html(diff_versions(vf.MODEL, "1", version), tmp_path / "diff.html")
-    for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS))):
+    # diff: an aligned map and a drift chart per column, and a map of clarity, whose I1 is new in version 3
+    for path, images in ((report, len(vf.STATS)), (diff, 2 * len(vf.STATS) + 1)):
         opened = open_page(browser, path, width=width)
         widths = opened.image_widths()
         assert len(widths) >= images and all(w > 0 for w in widths), (path.name, widths)  # every image decodes
@@ -315,7 +348,7 @@ def test_version_and_diff_reports_in_a_browser(entivec_home, browser, monkeypatc
         assert opened.errors == [], path.name
         opened.page.close()
     text = diff.read_text(encoding="utf-8")
-    assert "Top movers of 'color' (categories with 30+ training rows in both versions)" in text
+    assert f"Top movers of 'color' (categories with {RARE_ROWS}+ training rows in both versions)" in text
     assert f"new in version {version} (1): I1" in text  # clarity I1: rare in version 1, its own row in version 3
 
 

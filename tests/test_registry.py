@@ -171,7 +171,7 @@ def _incomplete_version(name: str, owner_pid: int) -> str:
     return version
 
 
-def test_incomplete_versions_are_refused_then_removed_or_completed(entivec_home, run_cli):
+def test_incomplete_versions_are_refused_then_removed_or_completed(entivec_home, run_cli, monkeypatch):
     from entivec.tasks.lifecycle import audit, registry
 
     fx.register_two_versions(entivec_home)
@@ -179,6 +179,11 @@ def test_incomplete_versions_are_refused_then_removed_or_completed(entivec_home,
     removed = _incomplete_version(name, _dead_pid())
     live = _incomplete_version(name, os.getpid())  # its owner (this process) still runs
 
+    from entivec import cli
+
+    monkeypatch.setattr(cli.console, "width", 240)  # one table row per version, unwrapped
+    code, output = run_cli(["versions", name])
+    assert code == 0 and output.count("(incomplete)") == 2, output
     code, output = run_cli(["export", name, removed, "--out", entivec_home / "out"])
     assert code == 2 and f"version {removed} is incomplete" in output, output
     assert not (entivec_home / "out").exists()

@@ -80,9 +80,10 @@ def test_the_seed_figure_separates_a_real_change_from_a_reseed():
     print(f"reseed: overlap {reseed['seed_neighbour_overlap']:.3f}, distance {reseed['seed_aligned_distance']:.3f}; "
           f"real change: overlap {real['seed_neighbour_overlap']:.3f}, distance {real['seed_aligned_distance']:.3f} "
           f"(chance overlap {reseed['seed_chance_overlap']:.3f})")
-    # Measured while developing (seeds 0 and 1): reseed overlap 0.54, distance 0.52; real change overlap 0.49,
-    # distance 0.98. The distance separates the two clearly; the overlap only a little, because the destinations
-    # lie along one direction (distance from New York) and near neighbours on a line trade places with a reseed.
+    # Measured while developing (seeds 0 and 1), with power_056 sizes: reseed overlap 0.54, distance 0.52, real
+    # change overlap 0.49, distance 0.98; with fourth_root sizes (4-d): reseed 0.52 / 0.41, real change 0.54 / 1.01.
+    # The aligned distance separates the two; the neighbour overlap does not here, because the destinations lie
+    # along one direction (distance from New York) and near neighbours on a line trade places with any reseed.
+    # So the distance is the figure to read a change against; the overlap only says the reseed is far above chance.
     assert real["seed_aligned_distance"] > 1.5 * reseed["seed_aligned_distance"]
-    assert reseed["seed_neighbour_overlap"] > real["seed_neighbour_overlap"]
     assert reseed["seed_neighbour_overlap"] > 2 * reseed["seed_chance_overlap"]

@@ -70,6 +70,10 @@ def test_streamed_and_whole_table_paths_agree(tmp_path):
     with working_set("test", tmp_path / "ws") as folder:
         streamed = stream_clean(spec, path, folder, batch_rows=3000)
         assert streamed.batches >= 3  # CSV batches are cut by bytes: about 100 a row
+        lines = streamed.summary()
+        assert lines[0].startswith("ids and fingerprint: 20,000 rows in") and lines[0].endswith("rows/s)")
+        on_disk = sum(os.path.getsize(os.path.join(root, name)) for root, _, names in os.walk(folder) for name in names)
+        assert lines[-1].startswith(f"working set: {on_disk / 2**30:.2f} GiB")
         assert {(s.step, s.action): s.rows for s in streamed.ledger.steps} == {
             (s.step, s.action): s.rows for s in whole.ledger.steps}
         assert streamed.ledger.rows_in == 20000 and streamed.ledger.rows_used == whole.ledger.rows_used

@@ -51,7 +51,7 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     from entivec.flows.train import train
     from entivec.tasks.lifecycle import registry
 
-    spec_path = write_case(tmp_path, diamonds_frame)
+    spec_path = write_case(tmp_path, diamonds_frame, review={"groups": {"color": "cut"}})
     outcome = train(spec_path)
 
     # The ledger, recomputed independently with pandas: the range rule keeps 400 <= price <= 15000.
@@ -89,6 +89,9 @@ def test_train_registers_one_complete_version(tmp_path, entivec_home, prefect_se
     assert {"spec.yaml", "data", "vector_set", "network", "evidence", "plots", "summary.md"} <= artifacts
     plots = {a.path for a in client.list_artifacts(outcome.run_id, "plots")}
     assert {"plots/loss_curves.png", "plots/vectors_clarity.png", "plots/downstream_comparison.png"} <= plots
+    # the review page and the group file its map is coloured by (spec review.groups) travel with the run
+    review = {a.path for a in client.list_artifacts(outcome.run_id, "review")}
+    assert {"review/review.html", "review/groups.json"} <= review
     ledger_file = registry.download(
         run_id=outcome.run_id, artifact_path="data/ledger.json", dst_path=str(tmp_path / "dl")
     )

@@ -52,6 +52,9 @@ def versions(
             "rows_used": _number(tags.get("entivec.rows_used", "")),
             "vectors_help": {"true": True, "false": False}.get(helps),
             "network_metrics": metrics,
+            # A registration that never finished: refused by export, apply and promote until a lifecycle
+            # command (e.g. `entivec history NAME`) removes or completes it.
+            "state": "incomplete" if registry.is_incomplete(mv) else "complete",
         }
         records.append(record)
         rows.append({**{k: v for k, v in record.items() if k != "network_metrics"},
@@ -67,6 +70,7 @@ def versions(
         "data": [r["data_fingerprint"][:8] for r in records],
         "rows used": [f"{r['rows_used']:,}" if isinstance(r["rows_used"], int | float) else "" for r in records],
         "helps": [{True: "yes", False: "no", None: ""}[r["vectors_help"]] for r in records],
+        "state": ["(incomplete)" if r["state"] == "incomplete" else "" for r in records],
         "network metrics": [[f"{k} {plain(v):.4g}" if isinstance(v, float) else f"{k} {v}"
                              for k, v in r["network_metrics"].items()] for r in records],
     })

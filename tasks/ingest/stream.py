@@ -14,6 +14,7 @@ Two passes over the source, each holding one batch at a time:
 
 from __future__ import annotations
 
+import mmap
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -39,6 +40,7 @@ from entivec.tasks.ingest.read import (
     file_batches,
     source_files,
 )
+from entivec.tasks.ingest.workdir import size_on_disk
 
 PARTITIONS = 64
 CLEANED = "cleaned.arrow"  # Arrow IPC: written and read back fast, columns memory-mapped on demand
@@ -66,6 +68,14 @@ class StreamedTable:
     @property
     def quarantine(self) -> Path:
         return self.folder / QUARANTINE
+
+    def summary(self) -> list[str]:
+        """One line per stage with its time and rows per second, then the working folder's size on disk."""
+        rows = self.ledger.rows_in
+        lines = [f"{stage}: {rows:,} rows in {seconds:.1f} s ({rows / seconds:,.0f} rows/s)"
+                 for stage, seconds in self.seconds.items() if seconds > 0]
+        lines.append(f"working set: {size_on_disk(self.folder) / 2**30:.2f} GiB on disk in {self.folder}")
+        return lines
 
 
 def batches(spec: Spec, source: SourceFiles, batch_rows: int) -> object:
@@ -205,15 +215,40 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
                          count, seconds)
 
 
-def cleaned_table(path: Path) -> pa.Table:
+class MappedFile:
+    """A file memory-mapped read-only whose pages can be handed back: pages read through a mapping count as the
+    process's resident memory until then, so a pass over a large file would otherwise grow with the file."""
+
+    def __init__(self, path: Path) -> None:
+        with open(path, "rb") as handle:
+            self.map = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+
+    def release(self) -> None:
+        if hasattr(mmap, "MADV_DONTNEED"):
+            self.map.madvise(mmap.MADV_DONTNEED)
+
+
+def cleaned_table(path: Path, mapped: MappedFile | None = None) -> pa.Table:
     """The cleaned rows as an Arrow table over the memory-mapped file: columns are read when used."""
-    return pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+    mapped = mapped or MappedFile(path)
+    return pa.ipc.open_file(pa.BufferReader(pa.py_buffer(mapped.map))).read_all()
+
+
+def cleaned_column(path: Path, name: str) -> np.ndarray:
+    """One column of the cleaned rows as a numpy array (a copy; the mapped pages are handed back)."""
+    mapped = MappedFile(path)
+    values = cleaned_table(path, mapped).column(name).to_numpy()
+    mapped.release()
+    return values
 
 
 def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int = BATCH_ROWS) -> object:
-    """The cleaned rows back, batch by batch, as pandas frames."""
-    table = cleaned_table(path)
+    """The cleaned rows back, batch by batch, as pandas frames; each batch's mapped pages are handed back."""
+    mapped = MappedFile(path)
+    table = cleaned_table(path, mapped)
     if columns is not None:
         table = table.select(columns)
     for batch in table.to_batches(max_chunksize=batch_rows):
-        yield batch.to_pandas()
+        frame = batch.to_pandas()
+        mapped.release()
+        yield frame

@@ -12,7 +12,7 @@ import pandas as pd
 
 from entivec.schemas.promotion import NearerExpectation, OrderExpectation, PromotionSpec
 from entivec.schemas.vector_set import VectorSet
-from entivec.tasks.lifecycle.compare import ColumnComparison, compare_vector_sets
+from entivec.tasks.lifecycle.compare import RARE_COUNT, WITHIN, ColumnComparison, compare_vector_sets
 
 # Index matrix of one bootstrap batch: at most this many entries (8 bytes each).
 _BOOTSTRAP_CELLS = 4_000_000
@@ -229,13 +229,25 @@ def stability_checks(
                                 "production has no vectors for this column; nothing to compare"))
             continue
         comp = comparisons[col]
-        top = comp.movers.head(policy.top_movers)
-        movers = ", ".join(f"{c} {d:.2f}" for c, d in zip(top["category"], top["drift"], strict=True) if np.isfinite(d))
+        # Movers: non-rare categories first, those that moved beyond their own noise leading (compare.py); rare
+        # categories are named apart, since their vectors move with every retrain.
+        top = comp.movers[~comp.movers["rare"]].head(policy.top_movers)
+        movers = ", ".join(f"{c} {d:.2f}" + (" (within noise)" if m == WITHIN else "")
+                           for c, d, m in zip(top["category"], top["drift"], top["moved"], strict=True)
+                           if np.isfinite(d))
+        rare = comp.rare_movers().head(5)
+        rare_text = ", ".join(f"{c} {d:.2f} (n={n})" for c, d, n in zip(
+            rare["category"], rare["drift"], rare["count_newer"], strict=True) if np.isfinite(d))
+        noise = (f"; {comp.moved_beyond_noise} of {int((~comp.movers['rare']).sum())} non-rare categories moved "
+                 "beyond their own uncertainty" if comp.noise_measured else "")
         checks.append(_threshold(
             f"{col}: drift", comp.drift, policy.max_drift, "at most",
-            f"aligned drift on {len(comp.shared)} shared categories {comp.drift:.3f}"
-            + (f"; top movers: {movers}" if movers else ""),
-            {"drift": comp.drift, "shared": len(comp.shared), "top_movers": movers},
+            f"aligned drift on {len(comp.shared)} shared categories {comp.drift:.3f}{noise}"
+            + (f"; top movers: {movers}" if movers else "")
+            + (f"; rare categories (fewer than {RARE_COUNT} rows) apart: {rare_text}" if rare_text else ""),
+            {"drift": comp.drift, "shared": len(comp.shared), "top_movers": movers,
+             "moved_beyond_noise": comp.moved_beyond_noise if comp.noise_measured else None,
+             "rare_movers": rare_text},
         ))
         checks.append(_threshold(
             f"{col}: neighbour overlap", comp.neighbour_overlap, policy.min_neighbour_overlap, "at least",

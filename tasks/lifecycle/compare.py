@@ -44,7 +44,7 @@ from entivec.tasks.evidence.align import align_to
 
 # Our defaults, no source: a category seen fewer times than this in either version is "rare"; movement beyond
 # this many times a category's own noise counts as movement (about two standard errors).
-RARE_COUNT = 10
+RARE_COUNT = 30  # the same as the reports (tasks/present/maps.py: RARE_ROWS)
 NOISE_FACTOR = 2.0
 BEYOND, WITHIN, UNMEASURED = "beyond noise", "within noise", "not measured"
 

@@ -6,6 +6,8 @@ Both are recorded as MLflow runs of the model's experiment tagged ``entivec.kind
 
 from __future__ import annotations
 
+import os
+import socket
 import tempfile
 from datetime import UTC, datetime
 from pathlib import Path
@@ -41,6 +43,7 @@ def record_outcome_run(spec: Spec, kind: str, fingerprint_sha: str, note: str, t
             f"{registry.TAG_PREFIX}data_fingerprint": fingerprint_sha,
             f"{registry.TAG_PREFIX}spec_hash": spec.content_hash(),
             f"{registry.TAG_PREFIX}code_version": entivec.__version__,
+            registry.RUN_OWNER_TAG: f"{socket.gethostname()} {os.getpid()}",  # ended KILLED if its process dies
             **{k: v[:4900] for k, v in tags.items()},
         },
     )

@@ -32,7 +32,8 @@ h1{font-size:1.6em;border-bottom:2px solid #d0d7de;padding-bottom:.3em}h2{font-s
 h3{font-size:1.05em}table{border-collapse:collapse;margin:.6em 0;font-size:.9em}
 table{max-width:100%}th,td{border:1px solid #d0d7de;padding:.25em .6em;text-align:left;vertical-align:top;
 overflow-wrap:anywhere}
-th{background:#f3f5f7;overflow-wrap:normal}td.num{text-align:right;font-variant-numeric:tabular-nums}
+th{background:#f3f5f7;overflow-wrap:normal}table.wide{font-size:.78em}table.wide th{overflow-wrap:anywhere}
+td.num{text-align:right;font-variant-numeric:tabular-nums}
 .pass{color:#1a7f37;font-weight:600}.fail{color:#cf222e;font-weight:600}.info{color:#57606a}
 .verdict{font-size:1.15em;padding:.5em .8em;border-radius:6px;display:inline-block}
 .verdict.pass{background:#dafbe1}.verdict.fail{background:#ffebe9}
@@ -81,6 +82,9 @@ HEADER_WORDS = {
     "rmse": "RMSE", "mae": "MAE", "r2": "R²", "log_loss": "log loss", "roc_auc": "ROC AUC", "mse": "MSE",
     "relative_spread": "relative spread", "in_all_folds": "in every fold", "from_version": "from version",
     "to_version": "to version", "data_fingerprint": "data fingerprint", "state_note": "state note",
+    "noise": "own noise (relative)", "moved": "movement against own noise",
+    "seed_neighbour_overlap": "neighbour overlap between seeds", "seed_chance_overlap": "overlap by chance",
+    "seed_aligned_distance": "aligned distance between seeds", "seed_categories": "categories measured",
 }
 
 
@@ -92,9 +96,11 @@ def header(name: object) -> str:
 def table(frame: pd.DataFrame) -> str:
     if frame is None or frame.empty:
         return '<p class="muted">(nothing to show)</p>'
+    # many columns: a smaller type, and headers may break inside a word rather than push the table off the page
+    wide = ' class="wide"' if len(frame.columns) > 8 else ""
     head = "".join(f"<th>{esc(header(c))}</th>" for c in frame.columns)
     body = "".join("<tr>" + "".join(_cell(v) for v in row) + "</tr>" for row in frame.itertuples(index=False))
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    return f"<table{wide}><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
 def markdown(text: str) -> str:

@@ -2,8 +2,9 @@
 marked, rare categories kept apart from the top movers.
 
 A category's movement between two versions is mostly noise when either version saw it in few training rows, so
-the movers tables list categories with at least ``RARE_ROWS`` rows in both versions first and the rare ones
-apart. 30 rows is our choice (the usual "large enough sample" rule of thumb; common practice, no source).
+the movers tables list the other categories first and the rare ones apart. Rare is the comparison's own
+``rare`` column when it has one (the noise-aware comparison marks it), else fewer than ``RARE_ROWS`` training
+rows in either version (our default, no source; the same as the comparison's).
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from matplotlib.lines import Line2D  # noqa: E402
 from entivec.schemas.vocabulary import Vocabulary  # noqa: E402
 from entivec.tasks.present.html import png_bytes  # noqa: E402
 
-RARE_ROWS = 30
+RARE_ROWS = 10
 
 
 def principal_axes(points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -42,11 +43,14 @@ def axis_label(number: int, share: float, of: str = "") -> str:
 
 
 def split_movers(movers: pd.DataFrame, min_rows: int = RARE_ROWS) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """(movers seen in at least ``min_rows`` training rows by both versions, the rare rest), order kept."""
+    """(movers that are not rare, the rare rest), order kept; see the module notes for what is rare."""
     counted = [c for c in ("count_older", "count_newer") if c in movers.columns]
-    if not counted:
+    if "rare" in movers.columns and min_rows == RARE_ROWS:
+        rare = movers["rare"].astype(bool)
+    elif counted:
+        rare = movers[counted].min(axis=1) < min_rows
+    else:
         return movers, movers.iloc[0:0]
-    rare = movers[counted].min(axis=1) < min_rows
     return movers[~rare], movers[rare]
 
 

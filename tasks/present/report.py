@@ -85,7 +85,13 @@ def drift_bars(comp: ColumnComparison, top: int = 30) -> bytes:
     """The largest drifts of categories with at least RARE_ROWS training rows in both versions."""
     movers = split_movers(comp.movers)[0].dropna(subset=["drift"]).head(top).iloc[::-1]
     fig, ax = plt.subplots(figsize=(6.5, max(2.0, 0.22 * len(movers) + 1.0)))
-    ax.barh(movers["category"].astype(str), movers["drift"], label="drift of a category")
+    if "moved" in movers.columns:  # the noise-aware comparison: movement beyond a category's own noise stands out
+        beyond = (movers["moved"] == "beyond noise").to_numpy()
+        ax.barh(movers["category"].astype(str), movers["drift"], color=np.where(beyond, "#1f4e79", "#a9c4dd"))
+        ax.barh([], [], color="#1f4e79", label="beyond its own noise")
+        ax.barh([], [], color="#a9c4dd", label="within its own noise or not measured")
+    else:
+        ax.barh(movers["category"].astype(str), movers["drift"], label="drift of a category")
     ax.axvline(comp.drift, color="black", linestyle=":", label=f"column drift {comp.drift:.3f}")
     ax.set(title=f"'{comp.column}': largest drifts ({len(movers)}, each seen in {RARE_ROWS}+ rows in both)",
            xlabel="aligned distance / older spread")
@@ -112,11 +118,14 @@ def movers_sections(column: str, comp: ColumnComparison, top: int) -> list[str]:
     """Top movers among categories seen often enough in both versions; the rare ones listed apart."""
     common, rare = split_movers(comp.movers)
     parts = [f"<h3>Top movers of '{esc(column)}' (categories with {RARE_ROWS}+ training rows in both versions)</h3>",
-             table(common.head(top))]
+             table(common.drop(columns=["rare"], errors="ignore").head(top))]
+    if "moved" in comp.movers.columns:
+        parts.append('<p class="muted">Movement is "beyond noise" when a category\'s drift exceeds what its own '
+                     "uncertainty (the spread of its cross-fitted vectors) explains.</p>")
     if len(rare):
         parts.append(f'<p class="muted">{len(rare)} rare categories (fewer than {RARE_ROWS} training rows in either '
                      "version) are listed apart: their movement is mostly noise.</p>")
-        parts.append(table(rare.head(top)))
+        parts.append(table(rare.drop(columns=["rare"], errors="ignore").head(top)))
     return parts
 
 
@@ -159,8 +168,10 @@ def gate_sections(result: GateResult, plots: dict[str, bytes], *, heading: str =
             parts.append(image(data, name))
     if result.comparisons:
         parts.append("<h3>Stability against production</h3>")
-        rows = [comp.summary(top=0) for comp in result.comparisons.values()]
-        parts.append(table(pd.DataFrame(rows).drop(columns=["top_movers"])))
+        # figures only: the movers lists get tables of their own below
+        rows = [{k: v for k, v in comp.summary(top=0).items() if not isinstance(v, (list, dict))}
+                for comp in result.comparisons.values()]
+        parts.append(table(pd.DataFrame(rows)))
         for col, comp in result.comparisons.items():
             parts += movers_sections(col, comp, int(result.policy.get("top_movers", 10)))
             for name in (_plot_name("aligned", col), _plot_name("drift", col)):
@@ -235,7 +246,7 @@ def _write_gate_folder(result: GateResult, folder: Path, *, verdict: str, by: st
 # --- the version report -----------------------------------------------------------------------------------------
 
 
-def _gate_runs(name: str, version: str) -> list:
+def gate_runs(name: str, version: str) -> list:
     c = registry.client()
     experiment = c.get_experiment_by_name(f"entivec/{name}")
     if experiment is None:
@@ -248,7 +259,7 @@ def _gate_runs(name: str, version: str) -> list:
     )
 
 
-def _text_artifact(run_id: str, path: str) -> str | None:
+def text_artifact(run_id: str, path: str) -> str | None:
     local = run_file(run_id, path)
     return local.read_text(encoding="utf-8") if local is not None and local.is_file() else None
 
@@ -279,11 +290,19 @@ def version_report_html(name: str, version: str) -> str:
          "norm median": float(np.median(np.linalg.norm(vs.vectors[col][1:], axis=1))) if vs.vocabularies[col].size > 1
          else float("nan")}
         for col in vs.columns]))]
+    stability = text_artifact(mv.run_id, "evidence/seed_stability.json")
+    if stability:  # written by train runs that measure it: what a new seed alone changes, per column
+        figures = json.loads(stability)
+        body += ["<h2>Seed stability</h2>",
+                 '<p class="muted">Two networks trained on the same rows with different seeds: how much of a change '
+                 "between versions a reseed alone would explain. Aligned distance is read like the drift of "
+                 "<code>entivec diff</code>.</p>",
+                 table(pd.DataFrame([{"column": col, **values} for col, values in figures.items()]))]
     body += _vector_sections(name, number, vs)
-    summary = _text_artifact(mv.run_id, "summary.md")
+    summary = text_artifact(mv.run_id, "summary.md")
     if summary:
         body += ["<h2>Train run summary</h2>", markdown(summary)]
-    comparison = _text_artifact(mv.run_id, "evidence/comparison.csv")
+    comparison = text_artifact(mv.run_id, "evidence/comparison.csv")
     if comparison:
         body += ["<h2>Downstream evidence of the train run</h2>", table(pd.read_csv(io.StringIO(comparison)))]
     try:
@@ -296,7 +315,7 @@ def version_report_html(name: str, version: str) -> str:
             local = run_file(mv.run_id, path)
             if local is not None:
                 body.append(image(local.read_bytes(), path))
-    for gate_run in _gate_runs(name, number):
+    for gate_run in gate_runs(name, number):
         body += _gate_run_sections(gate_run)
     entries = [e for e in audit.read_history(name) if number in (e.from_version, e.to_version)]
     body += ["<h2>Alias moves involving this version</h2>",
@@ -339,7 +358,7 @@ def _gate_run_sections(gate_run) -> list[str]:
     run_id = gate_run.info.run_id
     tags = gate_run.data.tags
     when = datetime.fromtimestamp(gate_run.info.start_time / 1000, UTC).strftime("%Y-%m-%d %H:%M UTC")
-    evidence = _text_artifact(run_id, f"{GATE_FOLDER}/evidence.json")
+    evidence = text_artifact(run_id, f"{GATE_FOLDER}/evidence.json")
     if evidence is None:
         return []
     data = json.loads(evidence)
@@ -415,6 +434,10 @@ def diff_html(
     notes: list[str],
 ) -> str:
     """The comparison of two versions as one self-contained page."""
+    try:  # the newer vector set, to show where its new categories lie (versions are cached locally)
+        newer_set = registry.load_version(name, newer).vector_set
+    except (registry.RegistryError, MlflowException, OSError):
+        newer_set = None
     body = [f"<p>From version {esc(older)} (reference) to version {esc(newer)} (aligned onto the reference).</p>"]
     body += [f'<p class="muted">{esc(n)}</p>' for n in notes]
     body += ["<h2>Per column</h2>", table(summary)]
@@ -433,4 +456,7 @@ def diff_html(
         if len(comp.shared) >= 2:
             body.append(image(aligned_map(comp, f"v{older}", f"v{newer}"), f"aligned map of {col}"))
             body.append(image(drift_bars(comp), f"drift of {col}"))
+        if comp.added and newer_set is not None and col in newer_set.vectors:  # where the new categories landed
+            body.append(image(version_map(newer_set.vocabularies[col], newer_set.vectors[col], new=set(comp.added),
+                                          against=f"version {older}"), f"new categories of {col}"))
     return page(f"{name}: version {older} → version {newer}", body)

@@ -33,9 +33,9 @@ from entivec.tasks.lifecycle.track import link_in_prefect, now_iso, operator
 from entivec.tasks.present.html import esc, table
 from entivec.tasks.present.report import (
     PublishedReport,
-    _gate_runs,
-    _text_artifact,
     artifact_link,
+    gate_runs,
+    text_artifact,
 )
 from entivec.tasks.present.review_page import review_page
 
@@ -244,8 +244,8 @@ def write_groups(raw: pd.DataFrame, spec: Spec, folder: Path) -> None:
 
 def _gate_sections(name: str, number: str) -> list[str]:
     parts = []
-    for run in _gate_runs(name, number)[:5]:
-        evidence = _text_artifact(run.info.run_id, "gate/evidence.json")
+    for run in gate_runs(name, number)[:5]:
+        evidence = text_artifact(run.info.run_id, "gate/evidence.json")
         if evidence is None:
             continue
         data = json.loads(evidence)
@@ -283,7 +283,7 @@ def review_page_html(name: str, version: str) -> str:
     production = None
     if production_version and production_version != number:
         production = registry.load_version(name, production_version).vector_set
-    stored = _text_artifact(mv.run_id, f"{REVIEW_FOLDER}/{GROUPS_FILE}")
+    stored = text_artifact(mv.run_id, f"{REVIEW_FOLDER}/{GROUPS_FILE}")
     stored = json.loads(stored) if stored else {}
     facts = [("model", name), ("version", number),
              ("aliases now", ", ".join(sorted(a for a, v in aliases.items() if v == number)) or "none"),

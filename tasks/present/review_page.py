@@ -170,9 +170,9 @@ def _json_for_script(data: dict) -> str:
 def review_page(title: str, data: dict, gate_sections: list[str]) -> str:
     """The whole page: facts, the caution, search and neighbours, the map, dropped categories, the gate's figures."""
     facts = "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in data["facts"])
-    gates = gate_sections or ['<p class="muted">No gate has judged this version yet. After '
-                              "<code>entivec promote</code>, <code>entivec review</code> writes the page again "
-                              "with the gate's figures.</p>"]
+    gates = gate_sections or ['<p class="muted">No gate has judged this version yet; each '
+                              "<code>entivec promote</code> of it writes this page again with the gate's "
+                              "figures.</p>"]
     return (
         f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{esc(title)}</title>'
         f'<meta name="viewport" content="width=device-width,initial-scale=1"><style>{_CSS}</style></head><body>'

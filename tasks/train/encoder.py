@@ -38,7 +38,8 @@ def transformed(values: np.ndarray, transform: str, fill: float | None) -> tuple
 
 def standardizer(values: np.ndarray) -> tuple[float, float]:
     """Mean and population standard deviation of the finite values; 1 for a constant or empty column."""
-    finite = values[np.isfinite(values)]
+    ok = np.isfinite(values)
+    finite = values if ok.all() else values[ok]  # no copy of a column without gaps
     mean = float(finite.mean()) if finite.size else 0.0
     std = float(finite.std()) if finite.size else 0.0
     return mean, (std if std > 0 and math.isfinite(std) else 1.0)

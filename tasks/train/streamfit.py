@@ -3,8 +3,9 @@
 What differs from :func:`trainer.fit_network` is only where rows come from. Each epoch reads the memory-mapped
 training arrays in a seeded random order of blocks with a shuffle inside each block (``WorkingSet.blocks``), so
 memory holds one block, the network and the validation rows. Early stopping uses a seeded sample of the
-training rows, at most ``max_valid_rows`` of them (held out of training), instead of a share of all rows: a
-validation loss on a million rows is as steady as on ten million. Optimizers, the hand-written passes, the
+training rows, at most ``max_valid_rows`` (250,000) of them, held out of training, instead of a share of all
+rows: the mean loss of 250,000 rows has a standard error of 0.2% of the loss's own spread, steady enough to tell
+epochs apart, and a share of 100 M rows would hold 15 M rows in memory. Optimizers, the hand-written passes, the
 loss and the evaluation are the trainer's.
 """
 
@@ -30,7 +31,7 @@ from entivec.tasks.train.trainer import (
     _torch_state,
     default_threads,
 )
-from entivec.tasks.train.workset import WorkingSet
+from entivec.tasks.train.workset import WorkingSet, release
 
 BLOCK_ROWS = 1 << 18
 
@@ -50,6 +51,7 @@ def _target_scale(y: np.ndarray, skip: np.ndarray, block: int = 1 << 22) -> tupl
     count, mean, m2 = 0, 0.0, 0.0
     for start in range(0, len(y), block):
         values = np.asarray(y[start: start + block], dtype=np.float64)[keep[start: start + block]]
+        release(y)
         if not len(values):
             continue
         n, m = len(values), float(values.mean())
@@ -63,7 +65,7 @@ def _target_scale(y: np.ndarray, skip: np.ndarray, block: int = 1 << 22) -> tupl
 
 def fit_from_working_set(
     ws: WorkingSet, *, columns: list[str], cardinalities: list[int], sizes: list[int], training: TrainingSpec,
-    task: str, block_rows: int = BLOCK_ROWS, max_valid_rows: int = 1_000_000,
+    task: str, block_rows: int = BLOCK_ROWS, max_valid_rows: int = 250_000,
 ) -> TrainResult:
     """Train the network on the working set's training rows; the same result type as ``fit_network``."""
     started = time.perf_counter()
@@ -76,6 +78,8 @@ def fit_from_working_set(
         shift, scale = _target_scale(y_all, valid_at)
     else:
         shift, scale = 0.0, 1.0
+    for array in (ids_all, dense_all, y_all):
+        release(array)  # the sample touched pages all over the arrays
     valid = _Tensors(valid_inputs, (valid_y - shift) / scale)
     n = n_all - len(valid_at)
     n_dense = dense_all.shape[1]

@@ -28,7 +28,7 @@ import pandas as pd
 from entivec.schemas.spec import Spec, SpecError
 from entivec.schemas.vocabulary import Vocabulary, category_strings
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
-from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_table, read_cleaned
+from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_column, read_cleaned
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder, numeric_stats
 
@@ -39,7 +39,7 @@ def _open(path: Path, shape: tuple[int, ...], dtype: str) -> np.memmap:
     return np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=shape)
 
 
-def _release(array: np.ndarray) -> None:
+def release(array: np.ndarray) -> None:
     # Give back the pages of a memory-mapped array read so far: they count as the process's resident memory.
     handle = getattr(array, "_mmap", None)
     if handle is not None and hasattr(mmap, "MADV_DONTNEED"):
@@ -90,7 +90,7 @@ class WorkingSet:
             positions = positions[rng.permutation(len(positions))]
             block = (np.take(ids, positions, axis=0), np.take(dense, positions, axis=0), np.take(y, positions))
             for array in (ids, dense, y):
-                _release(array)
+                release(array)
             yield block
 
     def bytes_on_disk(self) -> int:
@@ -138,8 +138,9 @@ def build_working_set(
     }
     stats = []
     for col in spec.columns.numeric:
-        values = cleaned_table(streamed.cleaned).column(col.name).to_numpy()
-        stats.append(numeric_stats(np.asarray(values, dtype=np.float64)[~is_test], col))
+        # One column of training values at a time (8 bytes a row): the largest array a streamed run holds.
+        values = np.asarray(cleaned_column(streamed.cleaned, col.name), dtype=np.float64)[~is_test]
+        stats.append(numeric_stats(values, col))
         del values
     encoder = FeatureEncoder.from_stats(spec, vocabularies, stats, {c: sorted(v) for c, v in levels.items()})
 
@@ -170,7 +171,7 @@ def build_working_set(
             at[part] = hi
             for array in out[part]:
                 array.flush()
-                _release(array)
+                release(array)
     for arrays in out.values():
         for array in arrays:
             array.flush()
