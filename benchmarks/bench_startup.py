@@ -72,7 +72,8 @@ def _register(home: Path, rows: int) -> tuple[str, Path]:
         run = client.create_run(registry.experiment_for(name), run_name=f"bench v{version}")
         client.log_artifacts(run.info.run_id, str(folder), artifact_path=registry.VECTOR_SET_ARTIFACT)
         client.set_terminated(run.info.run_id)
-        register_version(spec=spec, run_id=run.info.run_id, vector_set_folder=folder, version_tags={})
+        registered = register_version(spec=spec, run_id=run.info.run_id, vector_set_folder=folder, version_tags={})
+        registry.mark_complete(name, registered)  # registration is intent-first: a train run ends with this step
     registry.set_alias(name, registry.PRODUCTION, "1")
     registry.set_alias(name, registry.STAGING, "2")
     return name, spec_path

@@ -82,12 +82,47 @@ class _GuardedSubprocess(types.ModuleType):
         return self._real.Popen(args, *rest, **kwargs)
 
 
-def guard_temporary_server() -> None:
-    """Make the temporary Prefect server stop itself when the process that started it dies (even by SIGKILL)."""
-    from prefect.server.api import server
+_SERVER_MODULE = "prefect.server.api.server"
 
+
+class _GuardOnImport:
+    """A meta-path finder that guards Prefect's server module when something first imports it.
+
+    Importing it here would cost every command Prefect's import time (seconds), including those that only read
+    the registry and never start a server.
+    """
+
+    def find_spec(self, name: str, path: Any = None, target: Any = None) -> Any:
+        if name != _SERVER_MODULE:
+            return None
+        import importlib.util
+
+        sys.meta_path.remove(self)
+        spec = importlib.util.find_spec(name)
+        if spec is None or spec.loader is None:
+            return spec
+        run_module = spec.loader.exec_module
+
+        def exec_module(module: types.ModuleType) -> None:
+            run_module(module)
+            _guard(module)
+
+        spec.loader.exec_module = exec_module
+        return spec
+
+
+def _guard(server: types.ModuleType) -> None:
     if not isinstance(server.subprocess, _GuardedSubprocess):
         server.subprocess = _GuardedSubprocess(server.subprocess)
+
+
+def guard_temporary_server() -> None:
+    """Make the temporary Prefect server stop itself when the process that started it dies (even by SIGKILL):
+    at once when Prefect's server module is loaded, else as soon as something loads it."""
+    if _SERVER_MODULE in sys.modules:
+        _guard(sys.modules[_SERVER_MODULE])
+    elif not any(isinstance(finder, _GuardOnImport) for finder in sys.meta_path):
+        sys.meta_path.insert(0, _GuardOnImport())
 
 
 def finish(stop: Stopped) -> None:
