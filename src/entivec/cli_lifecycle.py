@@ -267,9 +267,19 @@ def _print_diff(cli, result, unchanged: bool, a: str, b: str, table) -> None:
         cli.console.print(table(rows, title="per column, A → B (B aligned onto A; new in B / gone from A)",
                                 wrap=("column",)))
         for comp in result.comparisons.values():
-            top = ", ".join(f"{c} {d:.2f}" for c, d in zip(comp.movers["category"].head(8),
-                                                             comp.movers["drift"].head(8), strict=True) if d == d)
+            # Movers beyond their own noise first (the order compare_vector_sets gives); categories seen too rarely
+            # to have a well-measured vector are listed apart, so they do not crowd out the real movers.
+            common = comp.movers[~comp.movers["rare"]].head(8)
+            top = ", ".join(
+                f"{c} {d:.2f}" + (f" ({m})" if comp.noise_measured else "")
+                for c, d, m in zip(common["category"], common["drift"], common["moved"], strict=True) if d == d
+            )
+            rare = comp.rare_movers().head(5)
             lines = [f"[bold]{escape(comp.column)}[/] top movers: {escape(top) or 'none'}"]
+            if len(rare):
+                lines.append("    rare categories (few rows, noisy vectors): " + escape(", ".join(
+                    f"{c} {d:.2f} (n={n})" for c, d, n in zip(rare["category"], rare["drift"], rare["count_newer"],
+                                                              strict=True) if d == d)))
             for label, values in (("added in B", comp.added), ("dropped from A", comp.dropped)):
                 if values:
                     more = " …" if len(values) > 20 else ""
