@@ -74,6 +74,8 @@ def versions(
         "network metrics": [[f"{k} {plain(v):.4g}" if isinstance(v, float) else f"{k} {v}"
                              for k, v in r["network_metrics"].items()] for r in records],
     })
+    if not (shown["state"] != "").any():  # the column only when a version needs it: room for the metrics at 80
+        shown = shown.drop(columns="state")
     emit(shown, fmt, cli.console, title=f"versions of {name}", wrap=("network metrics",),
          right=("version", "rows used"))
 
