@@ -49,7 +49,9 @@ def _options(
 ) -> None:
     """Retrain, judge, version and apply entity embeddings (vectors) of high-cardinality categories."""
     from entivec.cli_output import configure
+    from entivec.tasks.lifecycle.store import read_directly
 
+    read_directly(False)  # each command decides: the read-only ones turn direct reads of a SQLite store on
     if quiet and (verbose or debug):
         _fail("--quiet cannot be combined with --verbose or --debug")
     configure(quiet=quiet, verbose=verbose, debug=debug)

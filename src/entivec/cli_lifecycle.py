@@ -15,10 +15,15 @@ from entivec.cli_output import FORMAT_HELP, Format
 EXIT_REFUSED = 1  # the gate said no: not an input error, but not a success either
 
 
-def _base():
-    # Imported when a command runs: entivec.cli imports this module while it is itself being imported.
+def _base(reads_registry: bool = False):
+    """The application module (imported when a command runs: entivec.cli imports this module while it is itself
+    being imported). A command that only reads the registry reads a SQLite store directly (``store.direct``)."""
     from entivec import cli
 
+    if reads_registry:
+        from entivec.tasks.lifecycle.store import read_directly
+
+        read_directly()
     return cli
 
 
@@ -132,7 +137,7 @@ def history(
     from entivec.cli_output import figure_value, table, to_csv, to_json
     from entivec.tasks.lifecycle import audit
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     entries = cli._run(lambda: audit.history(name))
     frame = audit.history_frame(entries)
     if fmt is Format.table:
@@ -224,9 +229,10 @@ def diff(
     import pandas as pd
 
     from entivec.cli_output import emit, table, to_json
-    from entivec.flows.lifecycle import diff_versions, write_diff_html
+    from entivec.tasks.lifecycle.versiondiff import diff_versions
+    from entivec.tasks.present.report import write_diff_html
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     result = cli._run(lambda: diff_versions(name, a, b, spec_path=str(spec) if spec else None,
                                             neighbours=neighbours))
     unchanged = _unchanged(result)
@@ -315,7 +321,7 @@ def report(
     """Write a version's HTML report (train run plots, gate evidence, alias moves) and log it to MLflow."""
     from entivec.tasks.present import report as reports
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     # A plain call, not a flow: reading a finished version needs no Prefect server.
     published = cli._run(lambda: reports.publish_version_report(name, version, str(out) if out else None))
     cli.console.print(f"report written to {published.path}\nlogged to MLflow: {published.artifact_uri}",

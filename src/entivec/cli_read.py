@@ -16,9 +16,14 @@ from entivec.cli_output import FORMAT_HELP, Format
 VERDICT_STYLES = {"pass": "green", "fail": "bold red", "forced": "yellow", "FAILED": "bold red"}
 
 
-def _base():
+def _base(reads_registry: bool = True):
+    """The application module; a command that only reads the registry reads a SQLite store directly."""
     from entivec import cli
 
+    if reads_registry:
+        from entivec.tasks.lifecycle.store import read_directly
+
+        read_directly()
     return cli
 
 
@@ -95,7 +100,7 @@ def runs(
 ) -> None:
     """Every run of a model, newest first: trains, skips (no new data), drift stops, gates, sweeps."""
     from entivec.cli_output import emit, strip_markdown
-    from entivec.tasks.lifecycle.track import run_log
+    from entivec.tasks.lifecycle.runlog import run_log
 
     cli = _base()
     frame = cli._run(lambda: run_log(name, limit))
@@ -137,7 +142,7 @@ def check(spec: Annotated[Path, typer.Argument(help="The dataset spec (YAML) to 
     """
     from entivec.tasks.ingest import read
 
-    cli = _base()
+    cli = _base(reads_registry=False)
 
     def headers():
         from entivec.schemas.spec import load_spec, resolve_source

@@ -16,8 +16,6 @@ import numpy as np
 import pandas as pd
 import pyarrow as pyarrow_lib
 import pyarrow.parquet as pq
-from prefect import task
-from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.spec import (
     ROW_ID,
@@ -359,8 +357,20 @@ def retry_on_io_only(task: Any, task_run: Any, state: Any) -> bool:
     return isinstance(exc, OSError) and not isinstance(exc, (InputError, SpecError))
 
 
-# Cache keys would hash whole frames; every step here is cheap to redo, so nothing is cached.
-@task(name="ingest", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only, cache_policy=NO_CACHE)
-def ingest(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
-    """read_source as a task; an OSError with an errno (I/O trouble) is retried, bad input is not."""
+def _ingest(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]:
     return read_source(spec, spec_path)
+
+
+def __getattr__(attribute: str):
+    """``ingest``: read_source as a Prefect task, made when a flow first asks for it (``entivec check`` reads
+    headers without loading Prefect). An OSError with an errno (I/O trouble) is retried, bad input is not. Cache
+    keys would hash whole frames; every step here is cheap to redo, so nothing is cached."""
+    if attribute == "ingest":
+        from prefect import task
+        from prefect.cache_policies import NO_CACHE
+
+        made = task(name="ingest", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only,
+                    cache_policy=NO_CACHE)(_ingest)
+        globals()[attribute] = made
+        return made
+    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")

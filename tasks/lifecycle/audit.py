@@ -35,12 +35,9 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import pandas as pd
-from mlflow.exceptions import MlflowException
-from prefect import task
-from prefect.cache_policies import NO_CACHE
 
 from entivec.tasks.lifecycle import registry
-from entivec.tasks.lifecycle.track import now_iso, operator
+from entivec.tasks.lifecycle.stamps import now_iso, operator
 
 try:  # POSIX only; elsewhere the registry lease is used
     import fcntl
@@ -128,7 +125,7 @@ def _model_tags(name: str) -> dict[str, str]:
     registry.check_name(name)
     try:
         return dict(registry.client().get_registered_model(name).tags)
-    except MlflowException:
+    except registry.answer_types():
         registry.list_versions(name)  # raises the registry's own message for an unknown name
         raise
 
@@ -406,7 +403,17 @@ def record_move(
 
 
 # No retries: a move is not blindly repeated; the repair step settles an interrupted one.
-record_move_task = task(name="record-alias-move", cache_policy=NO_CACHE)(record_move)
+def __getattr__(attribute: str):
+    """``record_move_task``: ``record_move`` as a Prefect task, made when a flow first asks for it, so reading the
+    history does not load Prefect."""
+    if attribute == "record_move_task":
+        from prefect import task
+        from prefect.cache_policies import NO_CACHE
+
+        made = task(name="record-alias-move", cache_policy=NO_CACHE)(record_move)
+        globals()[attribute] = made
+        return made
+    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")
 
 
 def history(name: str, *, repair: bool = True) -> list[AuditEntry]:

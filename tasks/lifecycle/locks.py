@@ -25,11 +25,9 @@ from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
-from mlflow.exceptions import MlflowException
-
 from entivec.settings import tracking_uri
 from entivec.tasks.lifecycle import registry
-from entivec.tasks.lifecycle.track import now_iso, operator
+from entivec.tasks.lifecycle.stamps import now_iso, operator
 
 try:  # POSIX only; elsewhere the registry lease is used
     import fcntl
@@ -111,7 +109,7 @@ def _registry_lease(name: str, timeout: float) -> Iterator[None]:
                 description=f"entivec lifecycle lease of model {name!r}; removed when released",
             )
             break
-        except MlflowException as exc:
+        except registry.answer_types() as exc:
             # Taken: the store reports the name as existing, or (MLflow looks the holder up to word its
             # message) as already gone again when the holder released it meanwhile. Either way: wait, retry.
             if exc.error_code not in ("RESOURCE_ALREADY_EXISTS", "RESOURCE_DOES_NOT_EXIST"):
@@ -124,7 +122,7 @@ def _registry_lease(name: str, timeout: float) -> Iterator[None]:
     try:
         yield
     finally:
-        with contextlib.suppress(MlflowException):
+        with contextlib.suppress(*registry.answer_types()):
             if c.get_registered_model(lease).tags.get("entivec.lease.token") == token:
                 c.delete_registered_model(lease)
 
@@ -133,11 +131,11 @@ def _break_stale_lease(lease: str) -> None:
     c = registry.client()
     try:
         tags = c.get_registered_model(lease).tags
-    except MlflowException:
+    except registry.answer_types():
         return  # released meanwhile
     expires = tags.get("entivec.lease.expires")
     if expires and datetime.fromisoformat(expires) < datetime.now(UTC):
-        with contextlib.suppress(MlflowException):
+        with contextlib.suppress(*registry.answer_types()):
             # Only the lease seen stale is removed: a fresh one carries another token.
             if c.get_registered_model(lease).tags.get("entivec.lease.token") == tags.get("entivec.lease.token"):
                 c.delete_registered_model(lease)

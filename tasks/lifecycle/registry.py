@@ -28,11 +28,9 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import yaml
-from mlflow.entities.model_registry import ModelVersion
-from mlflow.exceptions import MlflowException
-from mlflow.tracking import MlflowClient
 
 from entivec.schemas.spec import MODEL_NAME_PATTERN, Spec, SpecError, spec_from_dict
 from entivec.schemas.vector_set import VectorSet
@@ -42,12 +40,18 @@ from entivec.tasks.lifecycle.store import (  # noqa: F401 - the registry's error
     Client,
     RegistryError,
     RegistryUnavailable,
+    answer_types,
     client,
     download,
     guarded,
+    read_directly,
     registry_timeout,
     server_label,
 )
+
+if TYPE_CHECKING:  # MLflow is loaded when a call needs it, not by importing this module
+    from mlflow.entities.model_registry import ModelVersion
+    from mlflow.tracking import MlflowClient
 
 STAGING = "staging"
 PRODUCTION = "production"
@@ -63,12 +67,16 @@ COMPLETE = "complete"
 OWNER_TAG = f"{TAG_PREFIX}registering_by"  # "host pid N since ISO-time": lets a later command judge it abandoned
 
 
+class LifecycleError(RegistryError):
+    """A lifecycle request that cannot be carried out as asked (no earlier production, blank reason, ...)."""
+
+
 class IncompleteVersion(RegistryError):
     """A version whose registration never finished; it is refused until a lifecycle command settles it."""
 
 
-def _is_answer(exc: MlflowException, *codes: str) -> bool:
-    return exc.error_code in (codes or ("RESOURCE_DOES_NOT_EXIST",))
+def _is_answer(exc: BaseException, *codes: str) -> bool:
+    return getattr(exc, "error_code", "") in (codes or ("RESOURCE_DOES_NOT_EXIST",))
 
 
 @contextmanager
@@ -100,7 +108,7 @@ def experiment_for(name: str) -> str:
     location = artifact_root() + f"/{name}" if tracking_uri().startswith("sqlite:") else None
     try:
         return c.create_experiment(experiment_name, artifact_location=location)
-    except MlflowException:  # created meanwhile by a concurrent run
+    except answer_types():  # created meanwhile by a concurrent run
         return c.get_experiment_by_name(experiment_name).experiment_id
 
 
@@ -140,7 +148,7 @@ def find_model(name: str):
     """The registered model ``name``, or None when there is none."""
     try:
         return client().get_registered_model(check_name(name))
-    except MlflowException as exc:
+    except answer_types() as exc:
         if _is_answer(exc):
             return None
         raise
@@ -150,7 +158,7 @@ def find_version(name: str, number: str | int) -> ModelVersion | None:
     """Version ``number`` of ``name``, or None when either does not exist."""
     try:
         return client().get_model_version(check_name(name), str(number))
-    except MlflowException as exc:
+    except answer_types() as exc:
         if _is_answer(exc, "RESOURCE_DOES_NOT_EXIST", "INVALID_PARAMETER_VALUE"):
             return None
         raise
@@ -161,7 +169,7 @@ def find_alias(name: str, alias: str) -> ModelVersion | None:
     check_alias(alias)
     try:
         return client().get_model_version_by_alias(check_name(name), alias)
-    except MlflowException as exc:
+    except answer_types() as exc:
         if _is_answer(exc, "RESOURCE_DOES_NOT_EXIST", "INVALID_PARAMETER_VALUE"):
             return None
         raise
@@ -275,7 +283,7 @@ def create_version(name: str, *, source: str, run_id: str, tags: dict[str, str])
     if find_model(name) is None:
         try:
             c.create_registered_model(name)
-        except MlflowException as exc:
+        except answer_types() as exc:
             if not _is_answer(exc, "RESOURCE_ALREADY_EXISTS"):
                 raise
     all_tags = {**tags, STATE_TAG: REGISTERING, OWNER_TAG: owner_text()}

@@ -11,6 +11,7 @@ from __future__ import annotations
 import logging
 import os
 import re
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -19,10 +20,8 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
-from mlflow.exceptions import MlflowException
-from mlflow.tracking import MlflowClient
-
 from entivec.settings import tracking_uri
+from entivec.tasks.lifecycle import direct
 
 TIMEOUT_VARIABLE = "ENTIVEC_REGISTRY_TIMEOUT"
 DEFAULT_TIMEOUT = 30.0
@@ -140,7 +139,9 @@ def failure_cause(exc: BaseException) -> str | None:
             return "connection refused or failed" if "refused" in text.lower() else "the server cannot be reached"
         if isinstance(link, PermissionError):
             return f"permission denied ({link.filename or text})"
-    if isinstance(exc, MlflowException):
+    if isinstance(exc, direct.StoreAnswer):
+        return None
+    if isinstance(exc, mlflow_error()):
         if exc.error_code in ANSWER_CODES:
             return None
         first = str(exc.message).strip().splitlines()[0] if str(exc.message).strip() else exc.error_code
@@ -195,15 +196,70 @@ class _QuietStoreErrors(logging.Filter):
 _quiet = _QuietStoreErrors()
 
 
+def mlflow_error() -> type[BaseException] | tuple[()]:
+    """MLflow's exception class once MLflow is loaded; an empty tuple (matches nothing) before: an exception of
+    MLflow cannot have been raised in a process that never imported it."""
+    loaded = sys.modules.get("mlflow.exceptions")
+    return loaded.MlflowException if loaded is not None else ()
+
+
+def answer_types() -> tuple[type[BaseException], ...]:
+    """The exceptions a store raises for "no such thing" or "invalid": the direct reader's and MLflow's."""
+    error = mlflow_error()
+    return (direct.StoreAnswer,) if error == () else (direct.StoreAnswer, error)
+
+
+DIRECT_VARIABLE = "ENTIVEC_DIRECT_READS"  # "0" sends every read through MLflow
+_direct = {"on": False}
+
+
+def read_directly(on: bool = True) -> None:
+    """Let this process answer registry reads from the SQLite file itself (``direct``); the read-only commands
+    turn it on, unless ``ENTIVEC_DIRECT_READS=0``. Writes, and reads the direct reader cannot answer exactly,
+    still go through MLflow."""
+    _direct["on"] = on and os.environ.get(DIRECT_VARIABLE, "1").strip() not in ("0", "false", "no")
+
+
 class Client:
-    """An ``MlflowClient`` bound to one store whose every method runs through ``guarded``."""
+    """An ``MlflowClient`` bound to one store whose every method runs through ``guarded``.
+
+    With ``read_directly()`` and a SQLite store, the reads ``direct.DirectReader`` answers are served from the
+    file without loading MLflow; the ``MlflowClient`` is made at the first call that needs it.
+    """
 
     def __init__(self, uri: str, registry_uri: str) -> None:
         self.uri = uri
         self.registry_uri = registry_uri
-        self._client = guarded(MlflowClient, tracking_uri=uri, registry_uri=registry_uri, uri=uri)
+        self._mlflow = None
+        self._reader: direct.DirectReader | None = None
+        path = direct.sqlite_path(uri)
+        if _direct["on"] and path is not None and uri == registry_uri:
+            try:
+                self._reader = direct.DirectReader(path)
+            except direct.NotDirect:
+                self._reader = None
+
+    @property
+    def _client(self) -> Any:
+        if self._mlflow is None:
+            from mlflow.tracking import MlflowClient
+
+            self._mlflow = guarded(MlflowClient, tracking_uri=self.uri, registry_uri=self.registry_uri, uri=self.uri)
+        return self._mlflow
 
     def __getattr__(self, attribute: str) -> Any:
+        if attribute.startswith("__"):
+            raise AttributeError(attribute)
+        if self._reader is not None and attribute in direct.DirectReader.METHODS:
+            answer = getattr(self._reader, attribute)
+
+            def read(*args: Any, **kwargs: Any) -> Any:
+                try:
+                    return answer(*args, **kwargs)
+                except direct.NotDirect:
+                    return guarded(getattr(self._client, attribute), *args, uri=self.uri, **kwargs)
+
+            return read
         value = getattr(self._client, attribute)
         if not callable(value):
             return value
@@ -212,6 +268,15 @@ class Client:
             return guarded(value, *args, uri=self.uri, **kwargs)
 
         return call
+
+    def download_artifact(self, run_id: str, artifact_path: str, dst_path: str) -> str | None:
+        """The direct reader's copy of a local artifact, or None when MLflow must fetch it."""
+        if self._reader is None:
+            return None
+        try:
+            return self._reader.download(run_id, artifact_path, dst_path)
+        except direct.NotDirect:
+            return None
 
 
 def client() -> Client:
@@ -226,8 +291,19 @@ def client() -> Client:
 
 
 def download(*, uri: str | None = None, **kwargs: Any) -> str:
-    """``mlflow.artifacts.download_artifacts`` against our store, bounded and typed like every other call."""
+    """``mlflow.artifacts.download_artifacts`` against our store, bounded and typed like every other call.
+
+    A run's artifact of a local store is copied from disk when this process reads directly (``read_directly``).
+    """
+    uri = uri or tracking_uri()
+    run_id, artifact_path = kwargs.get("run_id"), kwargs.get("artifact_path")
+    runs_uri = re.match(r"^runs:/([0-9a-f]+)/(.+)$", kwargs.get("artifact_uri") or "")
+    if runs_uri is not None:
+        run_id, artifact_path = runs_uri.groups()
+    if _direct["on"] and run_id and artifact_path and kwargs.get("dst_path") and uri == tracking_uri():
+        copied = client().download_artifact(run_id, artifact_path.strip("/"), kwargs["dst_path"])
+        if copied is not None:
+            return copied
     import mlflow.artifacts
 
-    uri = uri or tracking_uri()
     return guarded(mlflow.artifacts.download_artifacts, tracking_uri=uri, uri=uri, **kwargs)

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import getpass
 import json
 import math
 import os
@@ -14,7 +13,6 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-import pandas as pd
 import yaml
 from mlflow.entities import Metric, Param
 from prefect import task
@@ -26,6 +24,8 @@ from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.settings import project_home
 from entivec.tasks.lifecycle import lineage, registry
+from entivec.tasks.lifecycle.runlog import RUN_LOG_COLUMNS, run_log  # noqa: F401 - named here too
+from entivec.tasks.lifecycle.stamps import now_iso, operator  # noqa: F401 - named here too
 
 # The lookup model needs only these at serving time; naming them avoids MLflow's slow requirement inference.
 LOOKUP_REQUIREMENTS = ["mlflow==3.17.2", "numpy", "pandas", "pyarrow"]
@@ -34,17 +34,6 @@ MODEL_ARTIFACT = "lookup_model"  # the registered pyfunc model's folder inside t
 # Read by MLflow, never imported here: importing it would declare the model as a side effect.
 # By path, not by importing the apply room: that would load torch into every command that only reads runs.
 LOOKUP_MODEL_CODE = Path(__file__).parents[1] / "apply" / "lookup_model_entry.py"
-
-
-def operator() -> str:
-    try:
-        return getpass.getuser()
-    except Exception:  # no user database entry (some containers)
-        return "unknown"
-
-
-def now_iso() -> str:
-    return datetime.now(UTC).isoformat(timespec="seconds")
 
 
 def _flatten(prefix: str, value: Any, out: dict[str, str]) -> None:
@@ -208,44 +197,6 @@ def write_spec_copy(spec: Spec, source_text: str | None, folder: Path) -> None:
 def copy_into(src: Path, dst: Path) -> None:
     dst.parent.mkdir(parents=True, exist_ok=True)
     shutil.copy2(src, dst)
-
-
-RUN_LOG_COLUMNS = ["started", "kind", "status", "version", "verdict", "data_fingerprint", "user", "run_id", "note"]
-
-
-def run_log(name: str, limit: int = 50) -> pd.DataFrame:
-    """The runs of a model's experiment, newest first: trains, skips ("no new data"), drift stops, gates, sweeps.
-
-    ``version`` is the registered version a train run became, or the candidate a gate run judged (``verdict``
-    pass, fail or forced). ``note`` is the first line of the run's
-    note (its summary, or the reason nothing was trained). Versions tell what was made; this tells what was
-    attempted, which is where a scheduled run that trained nothing leaves its trace.
-    """
-    c = registry.client()
-    registry.check_name(name)
-    experiment = c.get_experiment_by_name(f"entivec/{name}")
-    if experiment is None:
-        registry.list_versions(name)  # no runs and no model: an error that names the known models
-        return pd.DataFrame(columns=RUN_LOG_COLUMNS)
-    by_run = {v.run_id: str(v.version) for v in c.search_model_versions(f"name = '{name}'")}
-    runs = c.search_runs([experiment.experiment_id], order_by=["attributes.start_time DESC"], max_results=limit)
-    rows = []
-    for run in runs:
-        tags = run.data.tags
-        note = tags.get("mlflow.note.content") or tags.get(f"{registry.TAG_PREFIX}reason", "")
-        rows.append({
-            "started": datetime.fromtimestamp(run.info.start_time / 1000, UTC).isoformat(timespec="seconds"),
-            "kind": tags.get(f"{registry.TAG_PREFIX}kind", ""),
-            "status": run.info.status,
-            # A gate run judged a candidate: its version and verdict are in the run's tags.
-            "version": by_run.get(run.info.run_id, tags.get(f"{registry.TAG_PREFIX}candidate_version", "")),
-            "verdict": tags.get(f"{registry.TAG_PREFIX}verdict", ""),
-            "data_fingerprint": tags.get(f"{registry.TAG_PREFIX}data_fingerprint", "")[:12],
-            "user": tags.get("mlflow.user", ""),
-            "run_id": run.info.run_id,
-            "note": next((line.strip() for line in note.splitlines() if line.strip()), ""),
-        })
-    return pd.DataFrame(rows, columns=RUN_LOG_COLUMNS)
 
 
 # --- Prefect artifacts ----------------------------------------------------------------------------------------

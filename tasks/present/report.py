@@ -11,10 +11,12 @@ from __future__ import annotations
 import io
 import json
 import re
+import sys
 import tempfile
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import TYPE_CHECKING
 from urllib.parse import urlsplit, urlunsplit
 
 import matplotlib
@@ -24,10 +26,6 @@ matplotlib.use("Agg")  # files only, never a window
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
-from mlflow.entities import Metric  # noqa: E402
-from mlflow.exceptions import MlflowException  # noqa: E402
-from prefect import task  # noqa: E402
-from prefect.cache_policies import NO_CACHE  # noqa: E402
 
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
@@ -35,14 +33,13 @@ from entivec.tasks.apply.outputs import write_text_atomically  # noqa: E402
 from entivec.tasks.lifecycle import audit, registry  # noqa: E402
 from entivec.tasks.lifecycle.checks import PairedInterval, loss_name
 from entivec.tasks.lifecycle.compare import ColumnComparison  # noqa: E402
-from entivec.tasks.lifecycle.gate import GateResult
-from entivec.tasks.lifecycle.lineage import gate_params, log_data_input
 from entivec.tasks.lifecycle.registry import run_file  # noqa: E402
-from entivec.tasks.lifecycle.track import (  # noqa: E402
-    link_in_prefect,  # noqa: E402
-    now_iso,
-    operator,
-)
+from entivec.tasks.lifecycle.stamps import now_iso, operator  # noqa: E402
+
+if TYPE_CHECKING:
+    from entivec.tasks.lifecycle.gate import GateResult
+    from entivec.tasks.lifecycle.versiondiff import VersionDiff
+
 from entivec.tasks.present.html import esc, facts, image, markdown, page, png_bytes, table  # noqa: E402
 from entivec.tasks.present.maps import (  # noqa: E402
     RARE_ROWS,
@@ -186,6 +183,10 @@ def gate_sections(result: GateResult, plots: dict[str, bytes], *, heading: str =
 
 def record_gate_evidence(result: GateResult, *, by: str, reason: str, forced: bool, spec_path: str) -> str:
     """Log the gate's evidence as an MLflow run of the model's experiment; returns its run id."""
+    from mlflow.entities import Metric
+
+    from entivec.tasks.lifecycle.lineage import gate_params, log_data_input
+
     c = registry.client()
     experiment_id = registry.experiment_for(result.name)
     verdict = "pass" if result.passed else ("forced" if forced else "fail")
@@ -307,7 +308,7 @@ def version_report_html(name: str, version: str) -> str:
         body += ["<h2>Downstream evidence of the train run</h2>", table(pd.read_csv(io.StringIO(comparison)))]
     try:
         plot_files = [a.path for a in c.list_artifacts(mv.run_id, "plots") if a.path.endswith(".png")]
-    except MlflowException:
+    except registry.answer_types():
         plot_files = []
     if plot_files:
         body.append("<h2>Plots of the train run</h2>")
@@ -410,14 +411,25 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
         staged.write_text(text, encoding="utf-8")
         registry.client().log_artifact(mv.run_id, str(staged), REPORT_FOLDER)
     link = artifact_link(mv.run_id, f"{REPORT_FOLDER}/{VERSION_REPORT}")
-    link_in_prefect(f"{name}-v{number}-report", link, f"{name} version {number}: report",
+    if "prefect" in sys.modules:  # only a Prefect run has a page to link from, and it has loaded Prefect
+        from entivec.tasks.lifecycle.track import link_in_prefect
+
+        link_in_prefect(f"{name}-v{number}-report", link, f"{name} version {number}: report",
                     f"Report of **{name}** version {number}, written {now_iso()} by {operator()}.")
     return PublishedReport(path, mv.run_id, link)
 
 
-@task(name="publish-version-report", cache_policy=NO_CACHE, retries=1)
-def publish_version_report_task(name: str, version: str, out: str | None = None) -> PublishedReport:
-    return publish_version_report(name, version, out)
+def __getattr__(attribute: str):
+    """``publish_version_report_task``: the publish step as a Prefect task, made when a flow first asks for it,
+    so ``entivec report`` does not load Prefect."""
+    if attribute == "publish_version_report_task":
+        from prefect import task
+        from prefect.cache_policies import NO_CACHE
+
+        made = task(name="publish-version-report", cache_policy=NO_CACHE, retries=1)(publish_version_report)
+        globals()[attribute] = made
+        return made
+    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")
 
 
 # --- the comparison of two versions -----------------------------------------------------------------------------
@@ -436,7 +448,7 @@ def diff_html(
     """The comparison of two versions as one self-contained page."""
     try:  # the newer vector set, to show where its new categories lie (versions are cached locally)
         newer_set = registry.load_version(name, newer).vector_set
-    except (registry.RegistryError, MlflowException, OSError):
+    except (registry.RegistryError, *registry.answer_types(), OSError):
         newer_set = None
     body = [f"<p>From version {esc(older)} (reference) to version {esc(newer)} (aligned onto the reference).</p>"]
     body += [f'<p class="muted">{esc(n)}</p>' for n in notes]
@@ -460,3 +472,10 @@ def diff_html(
             body.append(image(version_map(newer_set.vocabularies[col], newer_set.vectors[col], new=set(comp.added),
                                           against=f"version {older}"), f"new categories of {col}"))
     return page(f"{name}: version {older} → version {newer}", body)
+
+
+def write_diff_html(diff: VersionDiff, out: str | Path) -> Path:
+    """The comparison of two versions (``versiondiff.diff_versions``) as one HTML file, all or nothing."""
+    page_text = diff_html(diff.name, diff.older, diff.newer, diff.comparisons, diff.summary, diff.metrics,
+                          diff.judged, diff.notes)
+    return write_text_atomically(out, page_text, "the diff report")
