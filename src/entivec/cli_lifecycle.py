@@ -230,7 +230,6 @@ def diff(
 
     from entivec.cli_output import emit, table, to_json
     from entivec.tasks.lifecycle.versiondiff import diff_versions
-    from entivec.tasks.present.report import write_diff_html
 
     cli = _base(reads_registry=True)
     result = cli._run(lambda: diff_versions(name, a, b, spec_path=str(spec) if spec else None,
@@ -244,6 +243,8 @@ def diff(
     else:
         _print_diff(cli, result, unchanged, a, b, table)
     if html is not None:
+        from entivec.tasks.present.report import write_diff_html  # plotting, only for the page
+
         path = cli._run(lambda: write_diff_html(result, html))
         cli.console.print(f"HTML report written to {path}")
 
