@@ -17,6 +17,7 @@ inside each block, releasing the pages after each block, so memory stays at one 
 
 from __future__ import annotations
 
+import math
 import mmap
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -27,6 +28,7 @@ import pandas as pd
 
 from entivec.schemas.spec import Spec, SpecError
 from entivec.schemas.vocabulary import Vocabulary, category_strings
+from entivec.tasks.ingest.read import InputError
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
 from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_column, read_cleaned
 from entivec.tasks.train import targets
@@ -46,6 +48,9 @@ def release(array: np.ndarray) -> None:
         handle.madvise(mmap.MADV_DONTNEED)
 
 
+IS_TEST = "is-test.npy"  # per cleaned row, in the cleaned table's order: held out (True) or training (False)
+
+
 @dataclass
 class WorkingSet:
     folder: Path
@@ -55,6 +60,34 @@ class WorkingSet:
 
     def path(self, part: str, what: str) -> Path:
         return self.folder / f"{part}-{what}.npy"
+
+    def positions(self, part: str, at: np.ndarray) -> np.ndarray:
+        """Positions in the cleaned table of the part's rows ``at`` (positions within the part, sorted)."""
+        is_test = np.load(self.folder / IS_TEST, mmap_mode="r")
+        where = np.flatnonzero(np.asarray(is_test) if part == "test" else ~np.asarray(is_test))
+        release(is_test)
+        return where[np.asarray(at, dtype=np.int64)]
+
+    def take(self, part: str, at: np.ndarray) -> tuple[EncodedInputs, np.ndarray]:
+        """The encoded rows ``at`` of ``part`` (a bounded sample) in memory, as the in-memory trainer takes them."""
+        ids, dense, y = self.arrays(part)
+        at = np.asarray(at, dtype=np.int64)
+        out = (EncodedInputs(np.take(ids, at, axis=0).astype(np.int64), np.take(dense, at, axis=0)),
+               np.take(y, at).astype(np.float64))
+        for array in (ids, dense, y):
+            release(array)
+        return out
+
+    def part_blocks(self, part: str, block_rows: int) -> Iterator[tuple[EncodedInputs, np.ndarray]]:
+        """The part's rows in order, block by block, each block's pages handed back after it."""
+        ids, dense, y = self.arrays(part)
+        for start in range(0, len(y), block_rows):
+            stop = start + block_rows
+            block = (EncodedInputs(np.asarray(ids[start:stop], dtype=np.int64), np.array(dense[start:stop])),
+                     np.array(y[start:stop], dtype=np.float64))
+            for array in (ids, dense, y):
+                release(array)
+            yield block
 
     def arrays(self, part: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(ids int32 (n, k), dense float32 (n, d), y float32 (n,)) of ``part``, memory-mapped read-only."""
@@ -101,23 +134,40 @@ def _split_mask(frame: pd.DataFrame, spec: Spec, cutoff: object) -> np.ndarray:
     return test_mask(frame, spec.split, spec.id_name, cutoff)
 
 
+def random_test_rows(n: int, spec: Spec) -> np.ndarray:
+    """Which of ``n`` cleaned rows a ``random`` split holds out: the same rows as ``split_rows`` picks on the table
+    read whole (the same seeded permutation, its first ceil(n * test_fraction) rows).
+
+    The permutation is drawn over int32 positions (4 bytes a row, freed once the mask is made): numpy's shuffle
+    makes the same swaps whatever the element type, so the order equals ``default_rng(seed).permutation(n)``.
+    """
+    if n < 2:
+        raise InputError(f"cannot split {n} row(s) into a train and a test part; at least 2 are needed")
+    n_test = min(max(math.ceil(n * spec.split.test_fraction), 1), n - 1)
+    order = np.arange(n, dtype=np.int32 if n < 2**31 else np.int64)
+    np.random.default_rng(spec.split.seed).shuffle(order)
+    is_test = np.zeros(n, dtype=bool)
+    is_test[order[:n_test]] = True
+    return is_test
+
+
 def build_working_set(
     streamed: StreamedTable, spec: Spec, previous: dict[str, Vocabulary] | None = None,
     batch_rows: int = BATCH_ROWS,
 ) -> tuple[WorkingSet, dict[str, Vocabulary], FeatureEncoder]:
     """Split, count, fit the encoder and encode the cleaned rows of ``streamed`` into its folder."""
-    if spec.split.method == "random":
-        raise SpecError("spec: a streamed run splits by split.method: hash (a seeded hash of the id, stable across "
-                        "drops) or time; random draws a permutation of the whole table")
     cutoff = rolling_cutoff(pd.Series([streamed.newest_time]), spec.split) if spec.split.last_weeks else None
+    drawn = random_test_rows(streamed.ledger.rows_used, spec) if spec.split.method == "random" else None
     previous = previous or {}
     counts = {c: pd.Series(dtype=np.int64) for c in spec.embed_names}
     missing = dict.fromkeys(spec.embed_names, 0)
     levels: dict[str, set[str]] = {c: set() for c in spec.onehot_names}
     is_test = np.zeros(0, dtype=bool)
     parts = []
+    seen = 0
     for frame in read_cleaned(streamed.cleaned, batch_rows=batch_rows):
-        test = _split_mask(frame, spec, cutoff)
+        test = drawn[seen: seen + len(frame)] if drawn is not None else _split_mask(frame, spec, cutoff)
+        seen += len(frame)
         parts.append(test)
         train = frame[~test]
         for c in spec.embed_names:
@@ -127,6 +177,7 @@ def build_working_set(
         for c in spec.onehot_names:
             levels[c].update(str(v) for v in category_strings(train[c]).dropna().unique())
     is_test = np.concatenate(parts) if parts else is_test
+    del drawn, parts
     n_train, n_test = int((~is_test).sum()), int(is_test.sum())
     if n_train == 0 or n_test == 0:
         raise SpecError(f"spec: the split leaves the {'train' if n_train == 0 else 'test'} part empty "
@@ -145,11 +196,13 @@ def build_working_set(
     encoder = FeatureEncoder.from_stats(spec, vocabularies, stats, {c: sorted(v) for c, v in levels.items()})
 
     folder = streamed.folder
+    np.save(folder / IS_TEST, is_test)
     ws = WorkingSet(folder, list(spec.embed_names), encoder.dense_names, {"train": n_train, "test": n_test})
     k, d = len(spec.embed_names), len(encoder.dense_names)
+    # Targets in float64, as the in-memory path keeps them: a table that fits trains on the very same numbers.
     out = {p: (_open(ws.path(p, "ids"), (ws.rows[p], k), "int32"), _open(ws.path(p, "dense"), (ws.rows[p], d),
                                                                          "float32"),
-               _open(ws.path(p, "y"), (ws.rows[p],), "float32")) for p in PARTS}
+               _open(ws.path(p, "y"), (ws.rows[p],), "float64")) for p in PARTS}
     at = dict.fromkeys(PARTS, 0)
     seen = 0
     target = spec.target.column
