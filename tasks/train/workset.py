@@ -2,7 +2,8 @@
 
 Built from the cleaned rows a streamed ingestion wrote (``tasks/ingest/stream.py``), one batch at a time:
 
-1. **Split and count.** Each batch is split (``hash`` or ``time``; the side of a row depends on that row alone),
+1. **Split and count.** Each batch is split (``hash`` or ``time``: the side of a row depends on that row alone;
+   ``random``: the seeded permutation a table read whole gets, drawn once over the row count),
    and the categories of its training rows are counted; summed counts give the vocabularies
    (``Vocabulary.from_counts``: the same ids as a table read whole). One-hot levels are collected the same way.
 2. **Numeric statistics.** Per numeric column, its training values are read as one column (8 bytes a row, the
@@ -30,7 +31,14 @@ from entivec.schemas.spec import Spec, SpecError
 from entivec.schemas.vocabulary import Vocabulary, category_strings
 from entivec.tasks.ingest.read import InputError
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
-from entivec.tasks.ingest.stream import BATCH_ROWS, StreamedTable, cleaned_column, read_cleaned
+from entivec.tasks.ingest.stream import (
+    BATCH_ROWS,
+    CLEANED,
+    StreamedTable,
+    cleaned_column,
+    cleaned_rows,
+    read_cleaned,
+)
 from entivec.tasks.train import targets
 from entivec.tasks.train.encoder import EncodedInputs, FeatureEncoder, numeric_stats
 
@@ -77,6 +85,21 @@ class WorkingSet:
         for array in (ids, dense, y):
             release(array)
         return out
+
+    def frame(self, part: str, at: np.ndarray) -> pd.DataFrame:
+        """The cleaned rows ``at`` of ``part`` (positions within the part, sorted) as a pandas frame: for a bounded
+        sample, e.g. the downstream models' rows."""
+        return cleaned_rows(self.folder / CLEANED, self.positions(part, at))
+
+    def frames(self, part: str, columns: list[str], batch_rows: int = BATCH_ROWS) -> Iterator[pd.DataFrame]:
+        """The part's cleaned rows in order, batch by batch, only ``columns``."""
+        is_test = np.load(self.folder / IS_TEST, mmap_mode="r")
+        seen = 0
+        for frame in read_cleaned(self.folder / CLEANED, columns, batch_rows):
+            mask = np.asarray(is_test[seen: seen + len(frame)])
+            seen += len(frame)
+            release(is_test)
+            yield frame[mask if part == "test" else ~mask]
 
     def part_blocks(self, part: str, block_rows: int) -> Iterator[tuple[EncodedInputs, np.ndarray]]:
         """The part's rows in order, block by block, each block's pages handed back after it."""
