@@ -57,6 +57,7 @@ RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold network
 # shuffled copy), about what the block-fed trainer's block, validation sample and network take.
 IN_MEMORY_ROWS = 1_000_000
 IN_MEMORY_ROWS_VARIABLE = "ENTIVEC_IN_MEMORY_ROWS"
+BATCH_ROWS_VARIABLE = "ENTIVEC_BATCH_ROWS"
 
 
 @dataclass
@@ -139,17 +140,30 @@ def in_memory_rows() -> int:
         raise ValueError(f"{IN_MEMORY_ROWS_VARIABLE} must be a whole number of rows, got {value!r}") from None
 
 
+def batch_rows() -> int:
+    """Rows per batch of the streamed data path: ``ENTIVEC_BATCH_ROWS``, default ``BATCH_ROWS`` (262,144). Memory
+    grows with it (a batch in pandas, validated, encoded); the run's rows do not change it."""
+    value = os.environ.get(BATCH_ROWS_VARIABLE, "").strip()
+    try:
+        rows = int(value.replace("_", "")) if value else BATCH_ROWS
+    except ValueError:
+        rows = 0
+    if rows < 1:
+        raise ValueError(f"{BATCH_ROWS_VARIABLE} must be a whole number of rows above 0, got {value!r}")
+    return rows
+
+
 @task(name="ids-and-fingerprint", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only,
       cache_policy=NO_CACHE)
 def ids_and_fingerprint(spec: Spec, spec_path: str, folder: Path, groups: GroupTally) -> FirstPass:
-    return first_pass(spec, spec_path, folder, observers=(groups,))
+    return first_pass(spec, spec_path, folder, batch_rows(), observers=(groups,))
 
 
 @task(name="validate-and-clean", cache_policy=NO_CACHE)
 def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: FirstPass) -> StreamedTable:
     """The second pass; when every row is quarantined the quarantine is kept under the project folder first."""
     try:
-        return stream_clean(spec, spec_path, folder, first=first)
+        return stream_clean(spec, spec_path, folder, batch_rows(), first=first)
     except InputError as error:
         kept = folder / QUARANTINE
         if error.ledger is None or error.ledger.rows_used or not kept.exists():
@@ -161,7 +175,7 @@ def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: F
 
 @task(name="working-set", cache_policy=NO_CACHE)
 def working_set_task(streamed: StreamedTable, spec: Spec, previous: dict | None):
-    return build_working_set(streamed, spec, previous)
+    return build_working_set(streamed, spec, previous, batch_rows())
 
 
 def _fit(ws: WorkingSet, spec: Spec, training, cardinalities: list[int], sizes: list[int], init_vectors,
