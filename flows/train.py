@@ -25,7 +25,6 @@ from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
 from entivec.tasks.evidence.stability import seed_stability
-from entivec.tasks.ingest.clean import keep_quarantine, quarantine_rows
 from entivec.tasks.ingest.read import InputError, retry_on_io_only
 from entivec.tasks.ingest.stream import (
     BATCH_ROWS,
@@ -34,6 +33,8 @@ from entivec.tasks.ingest.stream import (
     StreamedTable,
     cleaned_rows,
     first_pass,
+    keep_quarantine,
+    quarantine_rows,
     stream_clean,
 )
 from entivec.tasks.ingest.workdir import size_on_disk, working_set

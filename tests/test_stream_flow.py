@@ -118,7 +118,8 @@ def whole_table_reference(spec_path: Path) -> dict:
         network_test_pred=pred[tested], n_available=len(train_rows), n_test_available=len(test_rows))
     return {"ledger": cleaned.ledger.to_dict(), "vocabularies": vocabularies, "vectors": result.vectors,
             "network": task_metrics("regression", y_test, pred), "evidence": evidence.table,
-            "fingerprint": data_fingerprint(raw, files)["sha256"], "profile": data_profile(raw, train_rows.iloc[fold_rows], spec, vocabularies),
+            "fingerprint": data_fingerprint(raw, files)["sha256"],
+            "profile": data_profile(raw, train_rows.iloc[fold_rows], spec, vocabularies),
             "groups": category_groups(raw, spec), "train_ids": set(train_rows["stone_id"].astype(str))}
 
 
@@ -219,7 +220,8 @@ def test_a_failure_during_ingestion_leaves_no_working_set_and_no_version(tmp_pat
                                           + text[cut:])
     code, output = run_cli(["train", spec_path])
     assert code == 2, output
-    assert "stones.csv" in output
+    line = text[:cut].count(b"\n") + 1  # the inserted line's number in the file (the header is line 1)
+    assert "stones.csv" in output and f"line {line}" in output, output
     assert registered_versions("stones") == 0
     assert not list((entivec_home / "workset").iterdir())
 

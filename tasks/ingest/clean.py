@@ -456,51 +456,9 @@ def write_quarantine(quarantine: pd.DataFrame, folder: str | Path) -> Path:
 
 
 
-def quarantine_rows(quarantine: pd.DataFrame | Path) -> int:
-    """Rows of a quarantine held as a frame or written by a streamed run (``quarantine.parquet``)."""
-    if isinstance(quarantine, pd.DataFrame):
-        return len(quarantine)
-    import pyarrow.parquet as pq
-
-    return pq.ParquetFile(quarantine).metadata.num_rows
-
-
-def write_quarantine_file(source: Path, folder: str | Path, batch_rows: int = 1 << 16) -> Path:
-    """:func:`write_quarantine` for a streamed run's ``quarantine.parquet``: copied batch by batch (reasons and the
-    row's origin first) as Parquet and CSV, so a large quarantine is never one frame in memory."""
-    import pyarrow.parquet as pq
-
-    folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    reader = pq.ParquetFile(source)
-    names = reader.schema_arrow.names
-    front = [c for c in (REASONS, *BOOKKEEPING) if c in names]
-    order = front + [c for c in names if c not in front]
-    parquet_path = folder / f"{QUARANTINE_STEM}.parquet"
-    csv_path = folder / f"{QUARANTINE_STEM}.csv"
-    writer = None
-    try:
-        for i, batch in enumerate(reader.iter_batches(batch_size=batch_rows, columns=order)):
-            if writer is None:
-                writer = pq.ParquetWriter(parquet_path, batch.schema)
-            writer.write_batch(batch)
-            batch.to_pandas().to_csv(csv_path, index=False, header=i == 0, mode="w" if i == 0 else "a")
-    finally:
-        if writer is not None:
-            writer.close()
-    if writer is None:
-        pq.write_table(reader.schema_arrow.empty_table().select(order), parquet_path)
-        pd.DataFrame(columns=order).to_csv(csv_path, index=False)
-    return parquet_path
-
-
-def keep_quarantine(quarantine: pd.DataFrame | Path, name: str, keep_in: str | Path) -> Path:
-    """Write the quarantine of a run that stops under ``keep_in``/``NAME-STAMP``; returns the Parquet file."""
-    stamp = pd.Timestamp.now(tz="UTC").strftime("%Y%m%dT%H%M%S%fZ")
-    folder = Path(keep_in) / f"{name}-{stamp}"
-    if isinstance(quarantine, pd.DataFrame):
-        return write_quarantine(quarantine, folder)
-    return write_quarantine_file(quarantine, folder)
+def kept_folder(name: str, keep_in: str | Path) -> Path:
+    """Where the quarantine of a run that stops is kept: ``keep_in``/``NAME-STAMP``."""
+    return Path(keep_in) / f"{name}-{pd.Timestamp.now(tz='UTC').strftime('%Y%m%dT%H%M%S%fZ')}"
 
 
 def clean_or_keep_quarantine(
@@ -516,7 +474,7 @@ def clean_or_keep_quarantine(
     except InputError as error:
         if error.quarantine is None:
             raise
-        path = keep_quarantine(error.quarantine, spec.name, keep_in)
+        path = write_quarantine(error.quarantine, kept_folder(spec.name, keep_in))
         raise InputError(
             f"{error}; the quarantine ({len(error.quarantine)} row(s) with their reasons) is in {path}",
             quarantine=error.quarantine,

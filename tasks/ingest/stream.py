@@ -28,9 +28,12 @@ from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import ROW_ID, Spec
 from entivec.schemas.tables import parse_times
 from entivec.schemas.vocabulary import category_strings
-from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.clean import kept_folder, validate_and_clean
+from entivec.tasks.ingest.common import KindTally
 from entivec.tasks.ingest.fingerprint import StreamFingerprint
 from entivec.tasks.ingest.read import (
+    BOOKKEEPING,
+    QUARANTINE_STEM,
     RAW_LINE,
     REASONS,
     SOURCE_FILE,
@@ -41,7 +44,6 @@ from entivec.tasks.ingest.read import (
     source_files,
 )
 from entivec.tasks.ingest.workdir import size_on_disk
-from entivec.tasks.lifecycle.profile import KindTally
 
 PARTITIONS = 64
 CLEANED = "cleaned.arrow"  # Arrow IPC: written and read back fast, columns memory-mapped on demand
@@ -290,3 +292,43 @@ def cleaned_rows(path: Path, positions: np.ndarray) -> pd.DataFrame:
     frame = cleaned_table(path, mapped).take(pa.array(np.asarray(positions, dtype=np.int64))).to_pandas()
     mapped.release()
     return frame
+
+
+def quarantine_rows(quarantine: pd.DataFrame | Path) -> int:
+    """Rows of a quarantine held as a frame or written by a streamed run (``quarantine.parquet``)."""
+    if isinstance(quarantine, pd.DataFrame):
+        return len(quarantine)
+    return pq.ParquetFile(quarantine).metadata.num_rows
+
+
+def write_quarantine_file(source: Path, folder: str | Path, batch_rows: int = 1 << 16) -> Path:
+    """:func:`write_quarantine` for a streamed run's ``quarantine.parquet``: copied batch by batch (reasons and the
+    row's origin first) as Parquet and CSV, so a large quarantine is never one frame in memory."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    reader = pq.ParquetFile(source)
+    names = reader.schema_arrow.names
+    front = [c for c in (REASONS, *BOOKKEEPING) if c in names]
+    order = front + [c for c in names if c not in front]
+    parquet_path = folder / f"{QUARANTINE_STEM}.parquet"
+    csv_path = folder / f"{QUARANTINE_STEM}.csv"
+    writer = None
+    try:
+        for i, batch in enumerate(reader.iter_batches(batch_size=batch_rows, columns=order)):
+            if writer is None:
+                writer = pq.ParquetWriter(parquet_path, batch.schema)
+            writer.write_batch(batch)
+            batch.to_pandas().to_csv(csv_path, index=False, header=i == 0, mode="w" if i == 0 else "a")
+    finally:
+        if writer is not None:
+            writer.close()
+    if writer is None:
+        pq.write_table(reader.schema_arrow.empty_table().select(order), parquet_path)
+        pd.DataFrame(columns=order).to_csv(csv_path, index=False)
+    return parquet_path
+
+
+def keep_quarantine(quarantine: Path, name: str, keep_in: str | Path) -> Path:
+    """Write the quarantine of a streamed run that stops under ``keep_in``/``NAME-STAMP``; returns the Parquet
+    file (the working set it came from is removed with the run)."""
+    return write_quarantine_file(quarantine, kept_folder(name, keep_in))

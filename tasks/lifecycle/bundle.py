@@ -15,7 +15,8 @@ from entivec.schemas.spec import Spec
 from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
 from entivec.tasks.evidence.downstream import Evidence
-from entivec.tasks.ingest.clean import quarantine_rows, write_quarantine, write_quarantine_file
+from entivec.tasks.ingest.clean import write_quarantine
+from entivec.tasks.ingest.stream import quarantine_rows, write_quarantine_file
 from entivec.tasks.lifecycle.track import write_spec_copy
 from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import save_weights

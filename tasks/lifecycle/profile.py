@@ -13,6 +13,7 @@ from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.spec import Spec
 from entivec.schemas.vocabulary import category_strings
+from entivec.tasks.ingest.common import KindTally, value_kind  # noqa: F401 - kept importable from here
 from entivec.tasks.ingest.read import BOOKKEEPING
 
 PROFILE_FORMAT = "entivec.data_profile/1"
@@ -62,17 +63,6 @@ def psi_reading(value: float | None) -> str:
 
 
 # --- the profile written at training ----------------------------------------------------------------------------
-
-
-def value_kind(series: pd.Series) -> str:
-    """A column's coarse type as read: number, boolean, datetime or text (int and float are one kind)."""
-    if pd.api.types.is_bool_dtype(series):
-        return "boolean"
-    if pd.api.types.is_numeric_dtype(series):
-        return "number"
-    if pd.api.types.is_datetime64_any_dtype(series):
-        return "datetime"
-    return "text"
 
 
 def column_roles(spec: Spec) -> dict[str, str]:
@@ -130,28 +120,6 @@ def data_columns(raw: pd.DataFrame | dict[str, str]) -> dict[str, str]:
     if isinstance(raw, dict):
         return dict(raw)
     return {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING}
-
-
-class KindTally:
-    """The kind of every column of a table read batch by batch, as :func:`value_kind` would give on the batches
-    concatenated: one value per column and batch is kept (the first present one, else the first), and the kinds
-    are read from those values concatenated, so pandas' own rules for mixed batches decide (a column of numbers
-    in one batch and text in another is text)."""
-
-    def __init__(self) -> None:
-        self.values: dict[str, list[pd.Series]] = {}
-
-    def update(self, frame: pd.DataFrame) -> None:
-        for column in frame.columns:
-            if column in BOOKKEEPING:
-                continue
-            series = frame[column]
-            present = series[series.notna()]
-            self.values.setdefault(str(column), []).append((present if len(present) else series).iloc[:1])
-
-    def result(self) -> dict[str, str]:
-        return {c: value_kind(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0])
-                for c, parts in self.values.items()}
 
 
 def data_profile(raw: pd.DataFrame | dict[str, str], rows: pd.DataFrame, spec: Spec,

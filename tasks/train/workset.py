@@ -27,7 +27,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from entivec.schemas.spec import Spec, SpecError
+from entivec.schemas.spec import Spec
+from entivec.schemas.tables import parse_times
 from entivec.schemas.vocabulary import Vocabulary, category_strings
 from entivec.tasks.ingest.read import InputError
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
@@ -174,6 +175,25 @@ def random_test_rows(n: int, spec: Spec) -> np.ndarray:
     return is_test
 
 
+def _empty_part(streamed: StreamedTable, spec: Spec, n_train: int, cutoff: object, batch_rows: int) -> InputError:
+    """The error ``split_rows`` gives when a split leaves a part empty, worded the same for a streamed table."""
+    split, n = spec.split, streamed.ledger.rows_used
+    if split.method != "time":
+        return InputError(f"hash split of {n} row(s) with test_fraction {split.test_fraction} leaves one part "
+                          f"empty; use more rows or another split.test_fraction")
+    low = high = None
+    for frame in read_cleaned(streamed.cleaned, [split.time_column], batch_rows):
+        times = parse_times(frame[split.time_column]).dropna()
+        if len(times):
+            low = times.min() if low is None else min(low, times.min())
+            high = times.max() if high is None else max(high, times.max())
+    side = "train" if n_train == 0 else "test"
+    at = (f"cutoff {split.cutoff!r} (spec key split.cutoff)" if split.last_weeks is None
+          else f"the last {split.last_weeks} week(s), from {cutoff} (spec key split.last_weeks)")
+    return InputError(f"time split on column {split.time_column!r} at {at} leaves the {side} part empty: times run "
+                      f"from {low} to {high}")
+
+
 def build_working_set(
     streamed: StreamedTable, spec: Spec, previous: dict[str, Vocabulary] | None = None,
     batch_rows: int = BATCH_ROWS,
@@ -203,8 +223,7 @@ def build_working_set(
     del drawn, parts
     n_train, n_test = int((~is_test).sum()), int(is_test.sum())
     if n_train == 0 or n_test == 0:
-        raise SpecError(f"spec: the split leaves the {'train' if n_train == 0 else 'test'} part empty "
-                        f"({n_train} training rows, {n_test} held-out rows)")
+        raise _empty_part(streamed, spec, n_train, cutoff, batch_rows)
     vocabularies = {
         col.name: Vocabulary.from_counts(col.name, counts[col.name], n_train, missing[col.name], col.min_count,
                                          previous.get(col.name))
