@@ -102,24 +102,54 @@ def _flow_child(data: str, home: str, epochs: int) -> dict:
     spec["training"].update({"epochs": epochs, "patience": epochs + 1, "progress": False})
     spec_path = Path(home) / "spec.yaml"
     spec_path.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    import threading
+
     from entivec.cli import app
 
     err = io.StringIO()
+    peaks: dict[int, int] = {}  # stage lines printed so far -> the highest RSS seen meanwhile (the next stage's)
+    done = threading.Event()
+
+    def sample() -> None:
+        while not done.wait(0.05):
+            rss = _rss()
+            at = err.getvalue().count("\n")
+            peaks[at] = max(peaks.get(at, 0), rss)
+
+    sampler = threading.Thread(target=sample, daemon=True)
     tick = time.perf_counter()
+    sampler.start()
     with contextlib.redirect_stderr(err):
         try:
             app(["train", str(spec_path)], standalone_mode=False)
         except SystemExit as exit_:
             if exit_.code:
                 raise
+    done.set()
+    sampler.join()
     wall = time.perf_counter() - tick
+    lines = err.getvalue().splitlines()
+    stage_peaks = {}
+    for at, rss in peaks.items():  # a stage's line is printed when it ends: samples before it are its own
+        if at < len(lines):
+            found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", lines[at])
+            if found:
+                stage_peaks[found.group(1)] = max(stage_peaks.get(found.group(1), 0), rss)
     stages = {}
     for line in err.getvalue().splitlines():  # progress.py's stage lines: "  name   12.3 s  ..."
         found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", line)
         if found:
             stages[found.group(1)] = float(found.group(2).replace(",", ""))
-    return {"stages": stages, "wall": wall,
+    return {"stages": stages, "wall": wall, "stage_peaks": stage_peaks,
             "peak_rss_bytes": _peak(), "log": err.getvalue()[-4000:]}
+
+
+def _rss() -> int:
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    return 0
 
 
 def _child(mode: str, data: str, home: str) -> dict:
@@ -259,11 +289,13 @@ def main() -> None:
             print(f"\n{rows:,} rows, the whole `entivec train` flow ({args.flow_epochs} epoch(s) per network; load "
                   f"{load:.1f}): wall {flow['wall']:.1f} s in the command, {wall:.1f} s with start-up; peak RSS "
                   f"{flow['peak_rss_bytes'] / gib:.2f} GiB")
-            for stage, seconds in flow["stages"].items():
-                print(f"  {stage:<28}{seconds:>10.1f} s")
-            for line in flow["log"].splitlines():
-                if "working set" in line or "trained " in line:
-                    print(f"  | {line.strip()[:150]}")
+            for line in flow["log"].splitlines():  # the command's own stage lines: wall time, rows, rows/s
+                found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", line)
+                if found:
+                    peak = flow["stage_peaks"].get(found.group(1))
+                    shown = f"{peak / gib:5.2f} GiB" if peak else " " * 9
+                    print(f"  {shown} | {line.strip()[:150]}")
+            print("  (GiB: the highest RSS sampled every 50 ms during that stage)")
         if args.only_flow:
             continue
         modes = ["stream"] + (["whole"] if rows <= args.whole_max else [])

@@ -299,6 +299,7 @@ def _train_streamed(spec: Spec, spec_text: str, spec_path: str, folder: Path, *,
         notes.append("no version to warm-start from: embedding tables start at random")
     on_disk = size_on_disk(folder)
     n_train, n_test = ws.rows["train"], ws.rows["test"]
+    encode_seconds = shown.seconds
     shown.end(ledger.rows_used, f"{n_train:,} train, {n_test:,} held out; working set {on_disk / 2**20:,.1f} MiB")
 
     limit = in_memory_rows()
@@ -352,8 +353,12 @@ def _train_streamed(spec: Spec, spec_text: str, spec_path: str, folder: Path, *,
     )
     shown.end(len(rows) + len(tested), ", ".join(ev.models))
 
-    data_path = [*streamed.summary()[:-1], f"working set: {on_disk / 2**20:,.1f} MiB on disk (removed when the run "
-                 f"ended)", f"network: {trainer}"]
+    rates = [row["rows_per_second"] for row in result.history]
+    data_path = [*streamed.summary()[:-1],
+                 f"split and encode: {ledger.rows_used:,} rows in {encode_seconds:.1f} s "
+                 f"({ledger.rows_used / max(encode_seconds, 1e-9):,.0f} rows/s)",
+                 f"working set: {on_disk / 2**20:,.1f} MiB on disk (removed when the run ended)",
+                 f"network: {trainer}; {float(np.median(rates)):,.0f} rows/s per epoch (median of {len(rates)})"]
     shown = progress.begin("record and register")
     project_home().mkdir(parents=True, exist_ok=True)
     workdir = Path(tempfile.mkdtemp(prefix="run-", dir=project_home()))
@@ -362,7 +367,9 @@ def _train_streamed(spec: Spec, spec_text: str, spec_path: str, folder: Path, *,
         # vocabularies (every training row) for the embedded columns' counts.
         bundle = BundleInputs(
             spec, spec_text, fingerprint, ledger, streamed.quarantine, vocabularies, encoder,
-            result, evidence, network_metrics, y_test, network_pred,
+            # The predicted-vs-actual plot: the downstream models' held-out sample (max_test_rows), not every
+            # held-out row (a scatter of 20 M points would take more memory than the whole run).
+            result, evidence, network_metrics, y_test[tested], network_pred[tested],
             profile=profile.data_profile_task(streamed.data_columns, ws.frame("train", fold_rows), spec,
                                               vocabularies),
             confidence=confidence, data_path=data_path,
