@@ -183,11 +183,11 @@ def _fit(ws: WorkingSet, spec: Spec, training, cardinalities: list[int], sizes: 
          in_memory: bool, label: str):
     common = dict(columns=spec.embed_names, cardinalities=cardinalities, sizes=sizes, training=training,
                   task=spec.target.task, init_vectors=init_vectors)
+    shown_as = "train" if label == "train-vectors" else "reseeded"  # the progress lines' name of each epoch
     if in_memory:
         inputs, y = ws.inputs("train")
-        return train_vectors.with_options(task_run_name=label)(inputs, y, **common)
-    return fit_from_working_set_task.with_options(task_run_name=label)(ws, label="train" if label == "train-vectors"
-                                                                       else "reseeded", **common)
+        return train_vectors.with_options(task_run_name=label)(inputs, y, label=shown_as, **common)
+    return fit_from_working_set_task.with_options(task_run_name=label)(ws, label=shown_as, **common)
 
 
 fit_from_working_set_task = task(name="train-vectors-from-working-set", cache_policy=NO_CACHE)(fit_from_working_set)

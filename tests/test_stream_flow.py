@@ -195,10 +195,15 @@ def test_a_duplicate_id_across_batches_and_a_bad_last_row_through_the_flow(tmp_p
     frame.loc[4500, "stone_id"] = frame.loc[20, "stone_id"]  # the same id, four batches apart
     frame["price"] = frame["price"].astype(object)
     frame.loc[4999, "price"] = "n/k"  # not a number, in the very last row of the last batch
-    spec_path = write_case(tmp_path, frame)
+    spec_path = write_case(tmp_path, frame, training={"epochs": 2, "batch_size": 256, "hidden": [8], "threads": 1})
     code, output = run_cli(["train", spec_path])
     assert code == 0, output
     run_id = output.split("(run ")[1].split(")")[0]
+    # Progress with rows per second per stage and per epoch (no terminal here, so lines rather than a bar).
+    for stage in ("ingest: ids, fingerprint", "validate and clean", "split and encode", "train epoch 2"):
+        assert any(line.strip().startswith(stage) and line.rstrip().split("rows/s")[0] != line.rstrip()
+                   for line in output.splitlines()), (stage, output)
+    assert "working set:" in output and "MiB on disk" in output
     quarantine = pd.read_parquet(run_artifact(run_id, "data/quarantine.parquet")).set_index("_source_row")
     # Reference: the row numbers of the file as written (1-based data rows).
     assert quarantine.loc[21, "_reasons"] == "duplicate_id" and quarantine.loc[4501, "_reasons"] == "duplicate_id"

@@ -161,7 +161,7 @@ def _loop(model: EntityNet, ws: WorkingSet, valid: _Tensors, valid_at: np.ndarra
                 history.append({"epoch": epoch, "train_loss": train_loss, "valid_loss": valid_loss,
                                 "seconds": seconds, "rows_per_second": n / seconds if seconds > 0 else float("inf")})
                 if shown is not None:
-                    shown.end(n, f"valid loss {valid_loss * (scale**2 if task == 'regression' else 1.0):.4g}")
+                    shown.end(n, f"best epoch {best_epoch if valid_loss >= best_loss else epoch}")
                 if not math.isfinite(train_loss):
                     raise FloatingPointError(f"{label}: the training loss became {train_loss} in epoch {epoch}; "
                                              f"lower training.learning_rate")
