@@ -123,6 +123,21 @@ def whole_table_reference(spec_path: Path) -> dict:
             "groups": category_groups(raw, spec), "train_ids": set(train_rows["stone_id"].astype(str))}
 
 
+def test_part_positions_read_block_by_block_match_numpy():
+    from entivec.tasks.train.workset import part_positions
+
+    rng = np.random.default_rng(4)
+    is_test = rng.random(10_007) < 0.2
+    for test in (True, False):
+        # Reference: numpy's flatnonzero over the whole flag array, indexed at the wanted positions.
+        every = np.flatnonzero(is_test if test else ~is_test)
+        at = rng.choice(len(every), size=500, replace=False)  # unsorted on purpose
+        np.testing.assert_array_equal(part_positions(is_test, test, at, block_rows=97), every[at])
+        np.testing.assert_array_equal(part_positions(is_test, test, np.sort(at)), every[np.sort(at)])
+    with pytest.raises(IndexError):
+        part_positions(is_test, True, np.array([int(is_test.sum())]), block_rows=97)
+
+
 def stone_table(rows: int) -> pd.DataFrame:
     frame = diamonds(rows)
     frame.loc[[3, rows - 2], "depth"] = [45.0, 80.0]  # outside the spec's depth range: quarantined

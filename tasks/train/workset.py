@@ -60,6 +60,28 @@ def release(array: np.ndarray) -> None:
 IS_TEST = "is-test.npy"  # per cleaned row, in the cleaned table's order: held out (True) or training (False)
 
 
+def part_positions(is_test: np.ndarray, test: bool, at: np.ndarray, block_rows: int = BATCH_ROWS) -> np.ndarray:
+    """Where the rows ``at`` of one part (``test``: the held-out part) sit among all rows flagged by ``is_test``,
+    in the order of ``at``; ``is_test`` is read ``block_rows`` at a time (a memory map's pages handed back)."""
+    at = np.asarray(at, dtype=np.int64)
+    order = np.argsort(at, kind="stable")
+    wanted = at[order]
+    found = np.empty(len(at), dtype=np.int64)
+    seen = done = 0  # rows of the part before the block; entries of ``wanted`` placed
+    for start in range(0, len(is_test), block_rows):
+        block = np.asarray(is_test[start: start + block_rows], dtype=bool)
+        where = np.flatnonzero(block if test else ~block)
+        upto = int(np.searchsorted(wanted, seen + len(where), side="left"))
+        found[done:upto] = start + where[wanted[done:upto] - seen]
+        done, seen = upto, seen + len(where)
+        release(is_test)
+    if done < len(wanted) or (len(wanted) and wanted[0] < 0):
+        raise IndexError(f"row positions outside the part's {seen} rows")
+    out = np.empty_like(found)
+    out[order] = found
+    return out
+
+
 @dataclass
 class WorkingSet:
     folder: Path
@@ -70,12 +92,10 @@ class WorkingSet:
     def path(self, part: str, what: str) -> Path:
         return self.folder / f"{part}-{what}.npy"
 
-    def positions(self, part: str, at: np.ndarray) -> np.ndarray:
-        """Positions in the cleaned table of the part's rows ``at`` (positions within the part, sorted)."""
-        is_test = np.load(self.folder / IS_TEST, mmap_mode="r")
-        where = np.flatnonzero(np.asarray(is_test) if part == "test" else ~np.asarray(is_test))
-        release(is_test)
-        return where[np.asarray(at, dtype=np.int64)]
+    def positions(self, part: str, at: np.ndarray, block_rows: int = BATCH_ROWS) -> np.ndarray:
+        """Positions in the cleaned table of the part's rows ``at`` (positions within the part), found block by
+        block of the split flags: the positions of every row of a part would be 8 bytes a row."""
+        return part_positions(np.load(self.folder / IS_TEST, mmap_mode="r"), part == "test", at, block_rows)
 
     def take(self, part: str, at: np.ndarray) -> tuple[EncodedInputs, np.ndarray]:
         """The encoded rows ``at`` of ``part`` (a bounded sample) in memory, as the in-memory trainer takes them."""
