@@ -9,12 +9,17 @@ numerics, a target; seeded) and runs, each in a fresh child process whose peak R
 - ``whole``: the same steps on a table read whole (read, validate and clean, split, vocabularies, encoder,
   encode), today's path; skipped above ``--whole-max`` rows.
 
+- ``flow``: the whole ``entivec train`` command (streamed ingestion, working set, training, seed check, folds,
+  downstream evidence, registration, report) in a fresh project folder, its stage lines (wall time, rows/s) and
+  peak RSS of the command's process; ``--flow-epochs`` caps the epochs (the spec's default budget is 30 epochs
+  with early stopping, twice with the seed check). ``--no-flow`` skips it.
+
 The streamed run ends with one epoch of training from the working set. Then, on the smallest table, the trainer
 fed from the working set's blocks (``tasks/train/streamfit.py``) and the in-memory trainer (``fit_network``)
-train the same rows in turn, rows per second side by side. Downstream evidence, drift profile and registration
-are not part of this script.
+train the same rows in turn, rows per second side by side.
 
     python benchmarks/bench_stream.py [--rows 1000000 10000000] [--whole-max 1000000] [--folder PATH]
+                                      [--flow-epochs 2] [--no-flow] [--no-fit]
 
 Machine load (1-minute load average) is printed beside every figure: on a shared machine compare ratios.
 """
@@ -24,6 +29,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import resource
 import subprocess
 import sys
@@ -82,7 +88,73 @@ def generate(path: Path, rows: int, seed: int = 0, chunk: int = 1_000_000) -> No
     writer.close()
 
 
+def _flow_child(data: str, home: str, epochs: int) -> dict:
+    """The ``entivec train`` command in this process (its Prefect server is a process of its own): stage lines
+    from standard error, peak RSS of this process."""
+    import contextlib
+    import io
+
+    import yaml
+
+    os.environ["ENTIVEC_HOME"] = home
+    os.environ.setdefault("PREFECT_HOME", str(Path(home) / "prefect"))
+    spec = spec_dict(data)
+    spec["training"].update({"epochs": epochs, "patience": epochs + 1, "progress": False})
+    spec_path = Path(home) / "spec.yaml"
+    spec_path.write_text(yaml.safe_dump(spec), encoding="utf-8")
+    import threading
+
+    from entivec.cli import app
+
+    err = io.StringIO()
+    peaks: dict[int, int] = {}  # stage lines printed so far -> the highest RSS seen meanwhile (the next stage's)
+    done = threading.Event()
+
+    def sample() -> None:
+        while not done.wait(0.05):
+            rss = _rss()
+            at = err.getvalue().count("\n")
+            peaks[at] = max(peaks.get(at, 0), rss)
+
+    sampler = threading.Thread(target=sample, daemon=True)
+    tick = time.perf_counter()
+    sampler.start()
+    with contextlib.redirect_stderr(err):
+        try:
+            app(["train", str(spec_path)], standalone_mode=False)
+        except SystemExit as exit_:
+            if exit_.code:
+                raise
+    done.set()
+    sampler.join()
+    wall = time.perf_counter() - tick
+    lines = err.getvalue().splitlines()
+    stage_peaks = {}
+    for at, rss in peaks.items():  # a stage's line is printed when it ends: samples before it are its own
+        if at < len(lines):
+            found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", lines[at])
+            if found:
+                stage_peaks[found.group(1)] = max(stage_peaks.get(found.group(1), 0), rss)
+    stages = {}
+    for line in err.getvalue().splitlines():  # progress.py's stage lines: "  name   12.3 s  ..."
+        found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", line)
+        if found:
+            stages[found.group(1)] = float(found.group(2).replace(",", ""))
+    return {"stages": stages, "wall": wall, "stage_peaks": stage_peaks,
+            "peak_rss_bytes": _peak(), "log": err.getvalue()[-4000:]}
+
+
+def _rss() -> int:
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    return 0
+
+
 def _child(mode: str, data: str, home: str) -> dict:
+    if mode.startswith("flow"):
+        return _flow_child(data, home, int(mode.split(":")[1]))
     os.environ["ENTIVEC_HOME"] = home
     import yaml
     from threadpoolctl import threadpool_limits
@@ -191,6 +263,9 @@ def main() -> None:
     parser.add_argument("--whole-max", type=int, default=1_000_000)
     parser.add_argument("--folder", type=Path, default=None, help="where the tables go (default: a temp folder)")
     parser.add_argument("--no-fit", action="store_true", help="skip the trainer comparison")
+    parser.add_argument("--no-flow", action="store_true", help="skip the whole `entivec train` flow")
+    parser.add_argument("--flow-epochs", type=int, default=2, help="epochs of the flow's networks (default 2)")
+    parser.add_argument("--only-flow", action="store_true", help="run the flow alone, no data-path children")
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -208,6 +283,21 @@ def main() -> None:
             generate(data, rows)
             took = time.perf_counter() - tick
             print(f"\n{rows:,} rows: generated {data.stat().st_size / gib:.2f} GiB in {took:.0f} s")
+        if not args.no_flow:
+            home = Path(tempfile.mkdtemp(prefix="home-flow-", dir=folder))
+            flow, wall, load = run_child(f"flow:{args.flow_epochs}", data, home)
+            print(f"\n{rows:,} rows, the whole `entivec train` flow ({args.flow_epochs} epoch(s) per network; load "
+                  f"{load:.1f}): wall {flow['wall']:.1f} s in the command, {wall:.1f} s with start-up; peak RSS "
+                  f"{flow['peak_rss_bytes'] / gib:.2f} GiB")
+            for line in flow["log"].splitlines():  # the command's own stage lines: wall time, rows, rows/s
+                found = re.match(r"^  (\S.*?)\s+([\d,]+\.\d) s(\s|$)", line)
+                if found:
+                    peak = flow["stage_peaks"].get(found.group(1))
+                    shown = f"{peak / gib:5.2f} GiB" if peak else " " * 9
+                    print(f"  {shown} | {line.strip()[:150]}")
+            print("  (GiB: the highest RSS sampled every 50 ms during that stage)")
+        if args.only_flow:
+            continue
         modes = ["stream"] + (["whole"] if rows <= args.whole_max else [])
         results = {}
         for mode in modes:
@@ -237,7 +327,7 @@ def main() -> None:
         for rows, peak in sorted(peaks.items()):
             print(f"stream peak RSS at {rows:,} rows / at {smallest:,} rows: {peak / peaks[smallest]:.2f} "
                   f"(target <= 1.3 at 10 M; <= 4 GiB at 100 M: {peak / gib:.2f} GiB)")
-    if args.no_fit:
+    if args.no_fit or args.only_flow:
         return
     smallest = min(args.rows)
     fit, _, load = run_child("fit", folder / f"deliveries-{smallest}.parquet",

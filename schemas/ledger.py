@@ -23,6 +23,41 @@ class LedgerStep:
     detail: str = ""
 
 
+EXAMPLES_AT = "e.g. "  # how tasks/ingest/clean.py's examples() begins its row references
+EXAMPLES = 5  # tasks/ingest/common.py EXAMPLES: row references quoted in a ledger step
+_MORE = ", ..."
+
+
+def _refs(detail: str) -> tuple[str, list[str], bool, str] | None:
+    """(text before the examples, the row references, whether more were left out, text after) of a detail."""
+    at = detail.rfind(EXAMPLES_AT)
+    if at < 0:
+        return None
+    body = detail[at + len(EXAMPLES_AT):]
+    tail = ""
+    end = body.find(";")  # a detail may go on after its examples (a fill's "; filled ..." part)
+    if end >= 0:
+        body, tail = body[:end], body[end:]
+    more = body.endswith(_MORE)
+    body = body[: -len(_MORE)] if more else body
+    return detail[:at], [r for r in body.split(", ") if r], more, tail
+
+
+def merged_detail(first: str, second: str) -> str:
+    """One step's detail of two batches read in order: the first's text, the examples of both (at most EXAMPLES, with
+    ", ..." when more rows had them), as ``examples()`` would have written on both batches read as one."""
+    a, b = _refs(first), _refs(second)
+    if b is None:
+        return first
+    if a is None:  # the first batch had no row of the step: its text is the second's without examples
+        return second if second.startswith(first) else first
+    if a[0] != b[0] or a[3] != b[3]:
+        return first
+    refs = a[1] + b[1]
+    more = a[2] or b[2] or len(refs) > EXAMPLES
+    return f"{a[0]}{EXAMPLES_AT}{', '.join(refs[:EXAMPLES])}{_MORE if more else ''}{a[3]}"
+
+
 @dataclass
 class Ledger:
     rows_in: int
@@ -50,7 +85,8 @@ class Ledger:
 
     def add(self, part: Ledger) -> None:
         """Add the ledger of one more batch of the same table: rows summed, each step's rows summed under the step
-        and action it was first recorded with (its detail, with its examples, is the first batch's)."""
+        and action it was first recorded with; the row examples of its detail are those of the batches in order,
+        at most ``EXAMPLES`` of them, so the sum reads as the ledger of the table read whole."""
         self.rows_in += part.rows_in
         self.rows_quarantined += part.rows_quarantined
         for name in part.files:
@@ -63,6 +99,8 @@ class Ledger:
                 known = LedgerStep(step.step, step.action, 0, step.detail)
                 self.steps.append(known)
                 index[(step.step, step.action)] = known
+            elif known.rows or step.rows:
+                known.detail = merged_detail(known.detail, step.detail)
             known.rows += step.rows
 
     def to_dict(self) -> dict:

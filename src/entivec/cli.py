@@ -179,6 +179,8 @@ def train(
         f"(run {outcome.run_id})\nrows: {outcome.rows_in} in, {outcome.rows_used} used, "
         f"{outcome.rows_quarantined} quarantined"
     )
+    for line in outcome.data_path:
+        console.print(f"  {line}", highlight=False)
     console.print(outcome.summary, highlight=False)
 
 

@@ -456,6 +456,11 @@ def write_quarantine(quarantine: pd.DataFrame, folder: str | Path) -> Path:
 
 
 
+def kept_folder(name: str, keep_in: str | Path) -> Path:
+    """Where the quarantine of a run that stops is kept: ``keep_in``/``NAME-STAMP``."""
+    return Path(keep_in) / f"{name}-{pd.Timestamp.now(tz='UTC').strftime('%Y%m%dT%H%M%S%fZ')}"
+
+
 def clean_or_keep_quarantine(
     raw: pd.DataFrame, spec: Spec, files: list[str] | None, keep_in: str | Path
 ) -> CleanResult:
@@ -469,9 +474,7 @@ def clean_or_keep_quarantine(
     except InputError as error:
         if error.quarantine is None:
             raise
-        stamp = pd.Timestamp.now(tz="UTC").strftime("%Y%m%dT%H%M%S%fZ")
-        folder = Path(keep_in) / f"{spec.name}-{stamp}"
-        path = write_quarantine(error.quarantine, folder)
+        path = write_quarantine(error.quarantine, kept_folder(spec.name, keep_in))
         raise InputError(
             f"{error}; the quarantine ({len(error.quarantine)} row(s) with their reasons) is in {path}",
             quarantine=error.quarantine,

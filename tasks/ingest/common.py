@@ -34,3 +34,34 @@ class InputError(Exception):
         self.ledger = ledger
 
 
+def value_kind(series: pd.Series) -> str:
+    """A column's coarse type as read: number, boolean, datetime or text (int and float are one kind)."""
+    if pd.api.types.is_bool_dtype(series):
+        return "boolean"
+    if pd.api.types.is_numeric_dtype(series):
+        return "number"
+    if pd.api.types.is_datetime64_any_dtype(series):
+        return "datetime"
+    return "text"
+
+
+class KindTally:
+    """The kind of every column of a table read batch by batch, as :func:`value_kind` would give on the batches
+    concatenated: one value per column and batch is kept (the first present one, else the first), and the kinds
+    are read from those values concatenated, so pandas' own rules for mixed batches decide (a column of numbers
+    in one batch and text in another is text)."""
+
+    def __init__(self) -> None:
+        self.values: dict[str, list[pd.Series]] = {}
+
+    def update(self, frame: pd.DataFrame) -> None:
+        for column in frame.columns:
+            if column in BOOKKEEPING:
+                continue
+            series = frame[column]
+            present = series[series.notna()]
+            self.values.setdefault(str(column), []).append((present if len(present) else series).iloc[:1])
+
+    def result(self) -> dict[str, str]:
+        return {c: value_kind(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0])
+                for c, parts in self.values.items()}

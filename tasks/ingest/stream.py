@@ -28,9 +28,12 @@ from entivec.schemas.ledger import Ledger
 from entivec.schemas.spec import ROW_ID, Spec
 from entivec.schemas.tables import parse_times
 from entivec.schemas.vocabulary import category_strings
-from entivec.tasks.ingest.clean import validate_and_clean
+from entivec.tasks.ingest.clean import kept_folder, validate_and_clean
+from entivec.tasks.ingest.common import KindTally
 from entivec.tasks.ingest.fingerprint import StreamFingerprint
 from entivec.tasks.ingest.read import (
+    BOOKKEEPING,
+    QUARANTINE_STEM,
     RAW_LINE,
     REASONS,
     SOURCE_FILE,
@@ -60,6 +63,7 @@ class StreamedTable:
     newest_time: object = None  # the newest time of the split's time column among the cleaned rows
     batches: int = 0
     seconds: dict[str, float] = field(default_factory=dict)
+    data_columns: dict[str, str] = field(default_factory=dict)  # each column's kind as read (drift's schema check)
 
     @property
     def cleaned(self) -> Path:
@@ -92,10 +96,11 @@ def _id_partition(ids: pd.Series) -> np.ndarray:
 
 
 def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: int,
-                   fingerprint: StreamFingerprint | None = None) -> np.ndarray:
+                   fingerprint: StreamFingerprint | None = None, observers: tuple = ()) -> np.ndarray:
     """Sorted positions (in the whole table) of rows whose id another row shares; missing ids are left out.
 
-    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own.
+    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own. The
+    fingerprint and every observer (anything with ``update(frame)``) see each raw batch as read.
     """
     folder.mkdir(parents=True, exist_ok=True)
     schema = pa.schema([("id", pa.string()), ("row", pa.int64())])
@@ -104,6 +109,8 @@ def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: in
         for offset, frame in batches(spec, source, batch_rows):
             if fingerprint is not None:
                 fingerprint.update(frame)
+            for observer in observers:
+                observer.update(frame)
             if spec.id_column is None:
                 continue  # row numbers are unique by construction
             ids = category_strings(frame[spec.id_column])
@@ -155,17 +162,41 @@ def quarantine_table(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
     return pa.table(columns, schema=schema)
 
 
-def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS) -> StreamedTable:
-    """Read, validate and clean the spec's source batch by batch into ``folder`` (see the module's docstring).
+@dataclass
+class FirstPass:
+    """What the first pass over the source found: enough to decide whether the second pass is needed at all (a
+    run whose data the latest version already has stops here)."""
+
+    source: SourceFiles
+    shared: np.ndarray
+    fingerprint: dict
+    data_columns: dict[str, str]
+    seconds: float
+
+
+def first_pass(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS,
+               observers: tuple = ()) -> FirstPass:
+    """Ids and fingerprint (pass 1): the rows whose id is shared, the data's fingerprint and each column's kind as
+    read; ``observers`` (``update(frame)``) see every raw batch too, e.g. the review page's group tally."""
+    source = source_files(spec, spec_path)
+    fingerprint = StreamFingerprint(source.columns)
+    kinds = KindTally()
+    tick = time.perf_counter()
+    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint, (kinds, *observers))
+    return FirstPass(source, shared, fingerprint.result(source.names), kinds.result(), time.perf_counter() - tick)
+
+
+def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS,
+                 first: FirstPass | None = None) -> StreamedTable:
+    """Read, validate and clean the spec's source batch by batch into ``folder`` (see the module's docstring);
+    ``first``: the first pass, when the caller made it already.
 
     Raises InputError for file-level faults and when no row survives (the quarantine file stays in ``folder``
     for the caller to keep), as the whole-table path does.
     """
-    source = source_files(spec, spec_path)
-    fingerprint = StreamFingerprint(source.columns)
-    tick = time.perf_counter()
-    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint)
-    seconds = {"ids and fingerprint": time.perf_counter() - tick}
+    first = first or first_pass(spec, spec_path, folder, batch_rows)
+    source, shared = first.source, first.shared
+    seconds = {"ids and fingerprint": first.seconds}
     tick = time.perf_counter()
     ledger = Ledger(rows_in=0, files=source.names)
     cleaned_writer = quarantine_writer = None
@@ -211,8 +242,8 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
         summary = ", ".join(f"{reason} ({rows})" for reason, rows in top)
         raise InputError(f"{', '.join(source.names)}: all {ledger.rows_in} row(s) were quarantined; most common "
                          f"reasons: {summary}", ledger=ledger)
-    return StreamedTable(folder, ledger, fingerprint.result(source.names), source.names, len(shared), newest,
-                         count, seconds)
+    return StreamedTable(folder, ledger, first.fingerprint, source.names, len(shared), newest, count, seconds,
+                         first.data_columns)
 
 
 class MappedFile:
@@ -252,3 +283,52 @@ def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int =
         frame = batch.to_pandas()
         mapped.release()
         yield frame
+
+
+def cleaned_rows(path: Path, positions: np.ndarray) -> pd.DataFrame:
+    """The cleaned rows at ``positions`` (in the cleaned table's order) as one pandas frame, in that order: for a
+    bounded sample; only the pages holding those rows are read, and they are handed back."""
+    mapped = MappedFile(path)
+    frame = cleaned_table(path, mapped).take(pa.array(np.asarray(positions, dtype=np.int64))).to_pandas()
+    mapped.release()
+    return frame
+
+
+def quarantine_rows(quarantine: pd.DataFrame | Path) -> int:
+    """Rows of a quarantine held as a frame or written by a streamed run (``quarantine.parquet``)."""
+    if isinstance(quarantine, pd.DataFrame):
+        return len(quarantine)
+    return pq.ParquetFile(quarantine).metadata.num_rows
+
+
+def write_quarantine_file(source: Path, folder: str | Path, batch_rows: int = 1 << 16) -> Path:
+    """:func:`write_quarantine` for a streamed run's ``quarantine.parquet``: copied batch by batch (reasons and the
+    row's origin first) as Parquet and CSV, so a large quarantine is never one frame in memory."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    reader = pq.ParquetFile(source)
+    names = reader.schema_arrow.names
+    front = [c for c in (REASONS, *BOOKKEEPING) if c in names]
+    order = front + [c for c in names if c not in front]
+    parquet_path = folder / f"{QUARANTINE_STEM}.parquet"
+    csv_path = folder / f"{QUARANTINE_STEM}.csv"
+    writer = None
+    try:
+        for i, batch in enumerate(reader.iter_batches(batch_size=batch_rows, columns=order)):
+            if writer is None:
+                writer = pq.ParquetWriter(parquet_path, batch.schema)
+            writer.write_batch(batch)
+            batch.to_pandas().to_csv(csv_path, index=False, header=i == 0, mode="w" if i == 0 else "a")
+    finally:
+        if writer is not None:
+            writer.close()
+    if writer is None:
+        pq.write_table(reader.schema_arrow.empty_table().select(order), parquet_path)
+        pd.DataFrame(columns=order).to_csv(csv_path, index=False)
+    return parquet_path
+
+
+def keep_quarantine(quarantine: Path, name: str, keep_in: str | Path) -> Path:
+    """Write the quarantine of a streamed run that stops under ``keep_in``/``NAME-STAMP``; returns the Parquet
+    file (the working set it came from is removed with the run)."""
+    return write_quarantine_file(quarantine, kept_folder(name, keep_in))

@@ -1,9 +1,10 @@
 """A run's on-disk working set: one folder in the project folder, removed when the run ends however it ends.
 
 A run that ends normally or by an exception removes its folder on the way out; SIGTERM and SIGINT are turned
-into an exception first, so they do the same. A SIGKILL cannot be caught: the folder then names its owner (pid
-and the process's start time), and the next run that opens a working set removes every folder whose owner is
-gone (a dead or zombie process, or a pid reused by another process).
+into an exception first (by the command's own handler when it has one), so they do the same. A SIGKILL cannot
+be caught: the folder then names its owner (pid and the process's start time), and the next run that opens a
+working set removes every folder whose owner is gone (a dead or zombie process, or a pid reused by another
+process).
 """
 
 from __future__ import annotations
@@ -74,7 +75,12 @@ def _signals_raise() -> Iterator[None]:
     def stop(signum, frame):  # noqa: ARG001 - the signal API's signature
         raise _Stopped(128 + signum)
 
-    previous = {s: signal.signal(s, stop) for s in (signal.SIGTERM, signal.SIGINT)}
+    # A handler of the caller's own (the command's, which raises its Stopped so the registration transaction and
+    # MLflow runs unwind as it expects) already turns the signal into an exception: it stays; only the default
+    # handlers, which would end the process without running the clean-up, are replaced.
+    defaults = (signal.SIG_DFL, signal.default_int_handler, None)
+    previous = {s: signal.signal(s, stop) for s in (signal.SIGTERM, signal.SIGINT)
+                if signal.getsignal(s) in defaults}
     try:
         yield
     finally:

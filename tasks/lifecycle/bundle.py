@@ -16,6 +16,7 @@ from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary
 from entivec.tasks.evidence.downstream import Evidence
 from entivec.tasks.ingest.clean import write_quarantine
+from entivec.tasks.ingest.stream import quarantine_rows, write_quarantine_file
 from entivec.tasks.lifecycle.track import write_spec_copy
 from entivec.tasks.train.encoder import FeatureEncoder
 from entivec.tasks.train.network import save_weights
@@ -28,7 +29,7 @@ class BundleInputs:
     spec_text: str | None
     fingerprint: dict
     ledger: Ledger
-    quarantine: pd.DataFrame
+    quarantine: pd.DataFrame | Path  # a frame, or the quarantine.parquet a streamed run wrote
     vocabularies: dict[str, Vocabulary]
     encoder: FeatureEncoder
     result: TrainResult
@@ -38,6 +39,7 @@ class BundleInputs:
     test_predicted: np.ndarray
     profile: dict | None = None  # what the training rows looked like, for drift checks of later data
     confidence: dict | None = None  # column -> per-category confidence table (VectorSet.confidence)
+    data_path: list[str] | None = None  # a streamed run's stages (time, rows/s) and its working set's size on disk
 
 
 def summary_text(b: BundleInputs) -> str:
@@ -48,6 +50,8 @@ def summary_text(b: BundleInputs) -> str:
     ]
     for reason, count in b.ledger.quarantined_by_reason().items():
         lines.append(f"- quarantined by {reason}: {count}")
+    if b.data_path:
+        lines += ["", "Data path (streamed):", *(f"- {line}" for line in b.data_path)]
     lines += ["", "Vocabularies and vectors:"]
     for col, vocab in b.vocabularies.items():
         lines.append(
@@ -75,7 +79,10 @@ def write_bundle(b: BundleInputs, folder: Path) -> Path:
     (folder / "data" / "ledger.json").write_text(json.dumps(b.ledger.to_dict(), indent=1))
     if b.profile is not None:
         (folder / "data" / "profile.json").write_text(json.dumps(b.profile, indent=1, default=str))
-    if len(b.quarantine):
+    if isinstance(b.quarantine, Path):
+        if quarantine_rows(b.quarantine):
+            write_quarantine_file(b.quarantine, folder / "data")
+    elif len(b.quarantine):
         write_quarantine(b.quarantine, folder / "data")
 
     vector_folder = folder / "vector_set"

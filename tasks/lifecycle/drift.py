@@ -46,7 +46,7 @@ from entivec.schemas.vector_set import VectorSet
 from entivec.schemas.vocabulary import Vocabulary, category_strings
 from entivec.tasks.ingest.clean import validate_and_clean
 from entivec.tasks.ingest.fingerprint import data_fingerprint
-from entivec.tasks.ingest.read import BOOKKEEPING, InputError, read_source
+from entivec.tasks.ingest.read import InputError, read_source
 from entivec.tasks.lifecycle import registry
 from entivec.tasks.lifecycle.profile import (
     EPSILON,
@@ -55,10 +55,10 @@ from entivec.tasks.lifecycle.profile import (
     PROFILE_FORMAT,
     PSI_READING,
     column_roles,
+    data_columns,
     numbers,
     psi,
     psi_reading,
-    value_kind,
 )
 from entivec.tasks.lifecycle.registry import run_file, version_spec
 from entivec.tasks.lifecycle.track import now_iso
@@ -284,10 +284,12 @@ def _kind_read_as(spec: Spec | None, column: str) -> str:
     return "text" if column in (spec.id_name, *spec.embed_names, *spec.onehot_names) else "inferred"
 
 
-def schema_changes(reference: Reference, raw: pd.DataFrame, spec: Spec) -> tuple[list[SchemaChange], list[str]]:
-    """Columns added, removed, retyped or given another role, against the reference version."""
+def schema_changes(reference: Reference, raw: pd.DataFrame | dict[str, str],
+                   spec: Spec) -> tuple[list[SchemaChange], list[str]]:
+    """Columns added, removed, retyped or given another role, against the reference version (``raw``: the table
+    as read, or the column kinds a streamed read tallied)."""
     notes: list[str] = []
-    now = {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING}
+    now = data_columns(raw)
     before = reference.data_columns
     roles_now = column_roles(spec)
     roles_before = (column_roles(reference.spec) if reference.spec is not None
@@ -322,9 +324,10 @@ def schema_changes(reference: Reference, raw: pd.DataFrame, spec: Spec) -> tuple
     return changes, notes
 
 
-def compare(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec,
-            fingerprint_sha: str = "") -> DriftReport:
-    """Drift of a new drop (``raw`` as read, ``rows`` its model-ready rows) against ``reference``."""
+def compare(reference: Reference, raw: pd.DataFrame | dict[str, str], rows: pd.DataFrame, spec: Spec,
+            fingerprint_sha: str = "", rows_in_drop: int | None = None) -> DriftReport:
+    """Drift of a new drop (``raw`` as read or its column kinds, ``rows`` its model-ready rows) against
+    ``reference``. ``rows_in_drop``: the drop's model-ready rows when ``rows`` is a seeded sample of them."""
     limits = spec.drift
     profile = reference.profile or {}
     profiled = profile.get("columns", {})
@@ -359,6 +362,9 @@ def compare(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: S
         notes.append(f"version {reference.version} was trained before data profiles were kept: embedded columns are "
                      "compared with its vocabulary counts, other columns are not profiled")
 
+    if rows_in_drop is not None and rows_in_drop != len(rows):
+        notes.append(f"Shares, bins and new categories are those of a seeded sample of {len(rows):,} of the drop's "
+                     f"{rows_in_drop:,} model-ready rows (evaluation.max_fold_rows).")
     changes, schema_notes = schema_changes(reference, raw, spec)
     notes += schema_notes
     breaches: list[str] = []
@@ -383,7 +389,8 @@ def compare(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: S
         else:
             notes.append(text + " (drift.on_schema_change is warn)")
     return DriftReport(
-        name=spec.name, against_alias=reference.alias, against_version=reference.version, rows=int(len(rows)),
+        name=spec.name, against_alias=reference.alias, against_version=reference.version,
+        rows=int(len(rows) if rows_in_drop is None else rows_in_drop),
         reference_rows=profile.get("rows"), data_fingerprint=fingerprint_sha,
         thresholds=limits.model_dump(mode="json"), columns=columns, schema_changes=changes, breaches=breaches,
         notes=notes,
@@ -391,9 +398,9 @@ def compare(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: S
 
 
 @task(name="check-drift", cache_policy=NO_CACHE)
-def compare_task(reference: Reference, raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec,
-                 fingerprint_sha: str = "") -> DriftReport:
-    return compare(reference, raw, rows, spec, fingerprint_sha)
+def compare_task(reference: Reference, raw: pd.DataFrame | dict[str, str], rows: pd.DataFrame, spec: Spec,
+                 fingerprint_sha: str = "", rows_in_drop: int | None = None) -> DriftReport:
+    return compare(reference, raw, rows, spec, fingerprint_sha, rows_in_drop)
 
 
 def write_report(report: DriftReport, folder: Path) -> Path:

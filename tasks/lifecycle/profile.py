@@ -13,6 +13,7 @@ from prefect.cache_policies import NO_CACHE
 
 from entivec.schemas.spec import Spec
 from entivec.schemas.vocabulary import category_strings
+from entivec.tasks.ingest.common import KindTally, value_kind  # noqa: F401 - kept importable from here
 from entivec.tasks.ingest.read import BOOKKEEPING
 
 PROFILE_FORMAT = "entivec.data_profile/1"
@@ -62,17 +63,6 @@ def psi_reading(value: float | None) -> str:
 
 
 # --- the profile written at training ----------------------------------------------------------------------------
-
-
-def value_kind(series: pd.Series) -> str:
-    """A column's coarse type as read: number, boolean, datetime or text (int and float are one kind)."""
-    if pd.api.types.is_bool_dtype(series):
-        return "boolean"
-    if pd.api.types.is_numeric_dtype(series):
-        return "number"
-    if pd.api.types.is_datetime64_any_dtype(series):
-        return "datetime"
-    return "text"
 
 
 def column_roles(spec: Spec) -> dict[str, str]:
@@ -125,10 +115,29 @@ def category_profile(values: pd.Series) -> dict[str, Any]:
     }
 
 
-def data_profile(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
-    """The profile of the rows a version trains on (``rows``), with the types of every column as read (``raw``)."""
+def data_columns(raw: pd.DataFrame | dict[str, str]) -> dict[str, str]:
+    """Each data column's kind as read (bookkeeping columns left out); a dict of kinds is taken as it is."""
+    if isinstance(raw, dict):
+        return dict(raw)
+    return {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING}
+
+
+def data_profile(raw: pd.DataFrame | dict[str, str], rows: pd.DataFrame, spec: Spec,
+                 vocabularies: dict | None = None) -> dict[str, Any]:
+    """The profile of the rows a version trains on (``rows``), with the types of every column as read (``raw``, or
+    the kinds a streamed read tallied).
+
+    ``rows`` may be a seeded sample of the training rows (a streamed run): bins, shares and category counts are
+    then the sample's. With ``vocabularies`` (built from every training row), the embedded columns' row and
+    missing counts come from them, so they agree with the vocabulary counts a drift check compares against.
+    """
     columns: dict[str, dict[str, Any]] = {}
     for name in spec.embed_names:
+        if vocabularies is not None:
+            vocab = vocabularies[name]
+            columns[name] = {"kind": "categorical", "rows": int(sum(vocab.counts)), "missing": int(vocab.unknown_count),
+                             "counts_in": "vocabulary"}
+            continue
         strings = category_strings(rows[name])
         columns[name] = {"kind": "categorical", "rows": int(len(strings)), "missing": int(strings.isna().sum()),
                          "counts_in": "vocabulary"}
@@ -136,15 +145,20 @@ def data_profile(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str,
         columns[name] = category_profile(rows[name])
     for name in [*spec.numeric_names, spec.target.column]:
         columns[name] = numeric_profile(rows[name], spec.drift.numeric_bins)
-    return {
+    trained = int(sum(vocabularies[spec.embed_names[0]].counts)) if vocabularies and spec.embed_names else len(rows)
+    out = {
         "format": PROFILE_FORMAT,
-        "rows": int(len(rows)),
-        "data_columns": {str(c): value_kind(raw[c]) for c in raw.columns if c not in BOOKKEEPING},
+        "rows": int(trained),
+        "data_columns": data_columns(raw),
         "roles": column_roles(spec),
         "columns": columns,
     }
+    if trained != len(rows):
+        out["sample_rows"] = int(len(rows))
+    return out
 
 
 @task(name="profile-data", cache_policy=NO_CACHE)
-def data_profile_task(raw: pd.DataFrame, rows: pd.DataFrame, spec: Spec) -> dict[str, Any]:
-    return data_profile(raw, rows, spec)
+def data_profile_task(raw: pd.DataFrame | dict[str, str], rows: pd.DataFrame, spec: Spec,
+                      vocabularies: dict | None = None) -> dict[str, Any]:
+    return data_profile(raw, rows, spec, vocabularies)

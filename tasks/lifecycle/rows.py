@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -29,12 +30,32 @@ def id_strings(values: pd.Series) -> pd.Series:
     return category_strings(values)
 
 
-def write_train_ids(train_rows: pd.DataFrame, spec: Spec, folder: str | Path) -> Path:
-    """Record the ids of the rows a version trained on (``folder`` is the run bundle's ``data/`` folder)."""
+def write_train_ids(train_rows: pd.DataFrame | Iterable[pd.DataFrame], spec: Spec, folder: str | Path) -> Path:
+    """Record the ids of the rows a version trained on (``folder`` is the run bundle's ``data/`` folder).
+
+    ``train_rows`` is the training frame or, for a streamed run, its batches in order: every id is written (a
+    gate must leave out every row a version saw, so a sample would not do), one batch in memory at a time.
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / Path(TRAIN_IDS_ARTIFACT).name
-    pd.DataFrame({"id": id_strings(train_rows[spec.id_name])}).to_parquet(path, index=False)
+    if isinstance(train_rows, pd.DataFrame):
+        pd.DataFrame({"id": id_strings(train_rows[spec.id_name])}).to_parquet(path, index=False)
+        return path
+    writer = None
+    try:
+        for frame in train_rows:
+            table = pa.Table.from_pandas(pd.DataFrame({"id": id_strings(frame[spec.id_name])}), preserve_index=False)
+            writer = writer or pq.ParquetWriter(path, table.schema)
+            writer.write_table(table.cast(writer.schema))
+    finally:
+        if writer is not None:
+            writer.close()
+    if writer is None:
+        pd.DataFrame({"id": pd.Series([], dtype="string")}).to_parquet(path, index=False)
     return path
 
 

@@ -211,31 +211,61 @@ def _finite(value: float) -> float | None:
 # --- groups, from the training data -------------------------------------------------------------------------------
 
 
+class GroupTally:
+    """Rows per (category, group value) of the columns named in ``review.groups``, summed batch by batch: what
+    :func:`category_groups` needs, bounded by the categories and groups, not by the rows."""
+
+    def __init__(self, spec: Spec) -> None:
+        self.spec = spec
+        self.columns: set[str] | None = None
+        self.tallies: dict[str, pd.Series] = {}
+
+    def update(self, raw: pd.DataFrame) -> None:
+        if self.columns is None:
+            self.columns = {str(c) for c in raw.columns}
+        for column, group_column in self.spec.review.groups.items():
+            if group_column not in raw.columns or column not in raw.columns:
+                continue
+            frame = pd.DataFrame({"c": category_strings(raw[column]), "g": category_strings(raw[group_column])})
+            tally = frame.dropna().value_counts(["c", "g"])
+            before = self.tallies.get(column)
+            self.tallies[column] = tally if before is None else before.add(tally, fill_value=0)
+
+    def result(self) -> dict:
+        out = {}
+        for column, group_column in self.spec.review.groups.items():
+            if self.columns is not None and (group_column not in self.columns or column not in self.columns):
+                out[column] = {"group_column": group_column, "categories": {},
+                               "note": f"review.groups: column {group_column!r} is not in the training data"}
+                continue
+            if column not in self.tallies or not len(self.tallies[column]):
+                out[column] = {"group_column": group_column, "categories": {}}
+                continue
+            tally = self.tallies[column].astype("int64").reset_index(name="n")
+            # most frequent group per category; ties go to the group that sorts first
+            tally = tally.sort_values(["c", "n", "g"], ascending=[True, False, True], kind="stable")
+            first = tally.drop_duplicates("c")
+            out[column] = {"group_column": group_column,
+                           "categories": dict(zip(first["c"].astype(str), first["g"].astype(str), strict=True))}
+        return out
+
+
 def category_groups(raw: pd.DataFrame, spec: Spec) -> dict:
     """Per embedded column named in ``review.groups``: each category's most frequent value of its group column."""
-    out = {}
-    for column, group_column in spec.review.groups.items():
-        if group_column not in raw.columns or column not in raw.columns:
-            out[column] = {"group_column": group_column, "categories": {},
-                           "note": f"review.groups: column {group_column!r} is not in the training data"}
-            continue
-        frame = pd.DataFrame({"c": category_strings(raw[column]), "g": category_strings(raw[group_column])}).dropna()
-        tally = frame.value_counts(["c", "g"]).reset_index(name="n")
-        # most frequent group per category; ties go to the group that sorts first
-        tally = tally.sort_values(["c", "n", "g"], ascending=[True, False, True], kind="stable")
-        first = tally.drop_duplicates("c")
-        out[column] = {"group_column": group_column,
-                       "categories": dict(zip(first["c"].astype(str), first["g"].astype(str), strict=True))}
-    return out
+    tally = GroupTally(spec)
+    tally.update(raw)
+    return tally.result()
 
 
-def write_groups(raw: pd.DataFrame, spec: Spec, folder: Path) -> None:
-    """``folder/review/groups.json`` for the train run's artifacts (nothing when the spec names no groups)."""
+def write_groups(raw: pd.DataFrame | GroupTally, spec: Spec, folder: Path) -> None:
+    """``folder/review/groups.json`` for the train run's artifacts (nothing when the spec names no groups); ``raw``
+    is the table as read or a tally of it made batch by batch."""
     if not spec.review.groups:
         return
     target = Path(folder) / REVIEW_FOLDER
     target.mkdir(parents=True, exist_ok=True)
-    payload = {"neighbours": spec.review.neighbours, "columns": category_groups(raw, spec)}
+    groups = raw.result() if isinstance(raw, GroupTally) else category_groups(raw, spec)
+    payload = {"neighbours": spec.review.neighbours, "columns": groups}
     (target / GROUPS_FILE).write_text(json.dumps(payload, ensure_ascii=False), encoding="utf-8")
 
 

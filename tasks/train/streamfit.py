@@ -17,6 +17,7 @@ import time
 import numpy as np
 import torch
 
+from entivec import progress
 from entivec.schemas.spec import TrainingSpec
 from entivec.tasks.train.encoder import EncodedInputs
 from entivec.tasks.train.network import EntityNet
@@ -29,7 +30,9 @@ from entivec.tasks.train.trainer import (
     _RowAdam,
     _Tensors,
     _torch_state,
+    _warm_start,
     default_threads,
+    epoch_budget,
 )
 from entivec.tasks.train.workset import WorkingSet, release
 
@@ -66,8 +69,11 @@ def _target_scale(y: np.ndarray, skip: np.ndarray, block: int = 1 << 22) -> tupl
 def fit_from_working_set(
     ws: WorkingSet, *, columns: list[str], cardinalities: list[int], sizes: list[int], training: TrainingSpec,
     task: str, block_rows: int = BLOCK_ROWS, max_valid_rows: int = 250_000,
+    init_vectors: dict[str, np.ndarray] | None = None, label: str = "training",
 ) -> TrainResult:
-    """Train the network on the working set's training rows; the same result type as ``fit_network``."""
+    """Train the network on the working set's training rows; the same result type as ``fit_network``, the same
+    epoch budget (``epoch_budget``), warm start and binary start from the base rate. With ``training.progress``
+    each epoch prints one line with its rows per second (``progress``)."""
     started = time.perf_counter()
     ids_all, dense_all, y_all = ws.arrays("train")
     n_all = len(y_all)
@@ -76,8 +82,10 @@ def fit_from_working_set(
     valid_y = np.take(y_all, valid_at).astype(np.float64)
     if task == "regression":
         shift, scale = _target_scale(y_all, valid_at)
+        rate = None
     else:
         shift, scale = 0.0, 1.0
+        rate, _ = _target_scale(y_all, valid_at)  # the base rate: the mean of 0/1 targets
     for array in (ids_all, dense_all, y_all):
         release(array)  # the sample touched pages all over the arrays
     valid = _Tensors(valid_inputs, (valid_y - shift) / scale)
@@ -88,8 +96,15 @@ def fit_from_working_set(
         model = EntityNet(cardinalities, sizes, n_dense, training.hidden, training.dropout)
         model.target_shift.fill_(shift)
         model.target_scale.fill_(scale)
+        with torch.no_grad():
+            if rate is not None:  # as fit_network: start from the base rate
+                rate = min(max(rate, 1e-6), 1 - 1e-6)
+                model.output.bias.fill_(math.log(rate / (1 - rate)))
+            for j, column in enumerate(columns):
+                if init_vectors and column in init_vectors:
+                    _warm_start(model.embeddings[j].weight, np.asarray(init_vectors[column]), column)
         history, best_epoch, best_loss = _loop(model, ws, valid, valid_at, n, training, task, block_rows,
-                                               shift, scale)
+                                               shift, scale, label)
     loss_scale = scale**2 if task == "regression" else 1.0
     for row in history:
         row["train_loss"] *= loss_scale
@@ -101,7 +116,7 @@ def fit_from_working_set(
 
 
 def _loop(model: EntityNet, ws: WorkingSet, valid: _Tensors, valid_at: np.ndarray, n: int, training: TrainingSpec,
-          task: str, block_rows: int, shift: float, scale: float) -> tuple[list[dict], int, float]:
+          task: str, block_rows: int, shift: float, scale: float, label: str) -> tuple[list[dict], int, float]:
     batch = min(training.batch_size, n)
     tables = [table.weight for table in model.embeddings]
     dense_params = [p for name, p in model.named_parameters() if not name.startswith("embeddings.")]
@@ -115,8 +130,9 @@ def _loop(model: EntityNet, ws: WorkingSet, valid: _Tensors, valid_at: np.ndarra
     history: list[dict] = []
     try:
         with torch.no_grad():
-            for epoch in range(1, training.epochs + 1):
+            for epoch in range(1, epoch_budget(training, n) + 1):
                 tick = time.perf_counter()
+                shown = progress.begin(f"{label} epoch {epoch}") if training.progress else None
                 model.train()
                 total = torch.zeros(())
                 for ids_b, dense_b, y_b in ws.blocks("train", block_rows, seed=training.seed * 100_003 + epoch,
@@ -144,9 +160,11 @@ def _loop(model: EntityNet, ws: WorkingSet, valid: _Tensors, valid_at: np.ndarra
                 seconds = time.perf_counter() - tick
                 history.append({"epoch": epoch, "train_loss": train_loss, "valid_loss": valid_loss,
                                 "seconds": seconds, "rows_per_second": n / seconds if seconds > 0 else float("inf")})
+                if shown is not None:
+                    shown.end(n, f"best epoch {best_epoch if valid_loss >= best_loss else epoch}")
                 if not math.isfinite(train_loss):
-                    raise FloatingPointError(f"the training loss became {train_loss} in epoch {epoch}; lower "
-                                             f"training.learning_rate")
+                    raise FloatingPointError(f"{label}: the training loss became {train_loss} in epoch {epoch}; "
+                                             f"lower training.learning_rate")
                 if valid_loss < best_loss:
                     best_loss, best_epoch, waited = valid_loss, epoch, 0
                     best_state = {k: t.detach().clone() for k, t in model.state_dict().items()}

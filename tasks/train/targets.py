@@ -40,26 +40,44 @@ def check_learnable(train_y: np.ndarray, test_y: np.ndarray, *, column: str, tas
                     files: list[str]) -> None:
     """Refuse data that is valid row by row but leaves nothing to learn or judge, with a message naming the files
     and the target column; raises InputError (exit 2 at the command line), before any training."""
+
+    train_y = np.asarray(train_y, dtype=np.float64)
+    check_learnable_values(len(train_y), len(test_y), np.unique(train_y[~np.isnan(train_y)]),
+                           np.unique(np.asarray(test_y, dtype=np.float64)), column=column, task=task, folds=folds,
+                           files=files)
+
+
+def distinct_values(blocks, at_most: int = 2) -> np.ndarray:
+    """Up to ``at_most`` of the smallest distinct non-missing values of arrays given block by block: all that
+    :func:`check_learnable_values` needs, without holding a column of a table that does not fit in memory."""
+    found = np.zeros(0)
+    for block in blocks:
+        block = np.asarray(block, dtype=np.float64)
+        found = np.unique(np.concatenate([found, np.unique(block[~np.isnan(block)])[:at_most]]))[:at_most]
+    return found
+
+
+def check_learnable_values(n_train: int, n_test: int, values: np.ndarray, held: np.ndarray, *, column: str,
+                           task: str, folds: int, files: list[str]) -> None:
+    """:func:`check_learnable` on row counts and the distinct training (``values``) and held-out (``held``) targets,
+    sorted; two of each are enough to decide."""
     from entivec.tasks.ingest.read import InputError
 
     where = ", ".join(files[:3]) + (" …" if len(files) > 3 else "")
     floor = max(MIN_TRAIN_ROWS, 2 * folds)
-    if len(train_y) < floor or len(test_y) < 1:
+    if n_train < floor or n_test < 1:
         raise InputError(
-            f"{where}: {len(train_y) + len(test_y)} row(s) left after cleaning ({len(train_y)} to train on, "
-            f"{len(test_y)} held out); training needs at least {floor} training rows (evaluation.folds = {folds}) "
+            f"{where}: {n_train + n_test} row(s) left after cleaning ({n_train} to train on, "
+            f"{n_test} held out); training needs at least {floor} training rows (evaluation.folds = {folds}) "
             "and one held-out row")
-    train_y = np.asarray(train_y, dtype=np.float64)
-    values = np.unique(train_y[~np.isnan(train_y)])
     if task == "binary":
         if len(values) < 2:
             raise InputError(
                 f"{where}: target column {column!r} (spec key target.column) holds one class only in the training "
                 f"rows (every value {values[0]:g}); a binary target needs rows of both 0 and 1")
-        held = np.unique(np.asarray(test_y, dtype=np.float64))
         if len(held) < 2:
             raise InputError(
-                f"{where}: target column {column!r} holds one class only in the {len(test_y)} held-out row(s); "
+                f"{where}: target column {column!r} holds one class only in the {n_test} held-out row(s); "
                 "the held-out metrics need both classes (more rows, or a different split)")
     elif len(values) < 2:
         raise InputError(

@@ -509,6 +509,7 @@ def _train_loop(
             bar_task = bar.add_task(label, total=epochs * batches_per_epoch, status="")
             for epoch in range(1, epochs + 1):
                 tick = time.perf_counter()
+                lines = progress.begin(f"{label} epoch {epoch}") if training.progress and not interactive else None
                 model.train()
                 data = train.permuted(torch.randperm(n, generator=shuffler), into=data)
                 total = torch.zeros(())
@@ -552,6 +553,8 @@ def _train_loop(
                     best_state = {k: t.detach().clone() for k, t in model.state_dict().items()}
                 else:
                     waited += 1
+                if lines is not None:  # no bar (a log, a pipe): one line per epoch instead
+                    lines.end(n, f"best epoch {best_epoch}")
                 bar.update(
                     bar_task,
                     completed=epoch * batches_per_epoch,
