@@ -17,6 +17,7 @@ from prefect.cache_policies import NO_CACHE
 from prefect.transactions import transaction
 
 from entivec import progress
+from entivec.flows.parallel import flow_dask_client
 from entivec.schemas.spec import Spec, load_spec
 from entivec.schemas.vector_set import column_file_stem
 from entivec.settings import project_home
@@ -25,6 +26,7 @@ from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
 from entivec.tasks.evidence.stability import seed_stability
+from entivec.tasks.ingest.partitioned import Mapper, dask_mapper, in_process, stream_clean_parts
 from entivec.tasks.ingest.read import InputError, retry_on_io_only
 from entivec.tasks.ingest.stream import (
     BATCH_ROWS,
@@ -162,8 +164,12 @@ def ids_and_fingerprint(spec: Spec, spec_path: str, folder: Path, groups: GroupT
 
 @task(name="validate-and-clean", cache_policy=NO_CACHE)
 def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: FirstPass) -> StreamedTable:
-    """The second pass; when every row is quarantined the quarantine is kept under the project folder first."""
+    """The second pass; when every row is quarantined the quarantine is kept under the project folder first. On
+    Dask, one file per worker task (``tasks/ingest/partitioned.py``), the same rows as the stream gives."""
     try:
+        mapper = _mapper()
+        if mapper is not in_process:
+            return stream_clean_parts(spec, folder, first, mapper, batch_rows())
         return stream_clean(spec, spec_path, folder, batch_rows(), first=first)
     except InputError as error:
         kept = folder / QUARANTINE
@@ -176,7 +182,14 @@ def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: F
 
 @task(name="working-set", cache_policy=NO_CACHE)
 def working_set_task(streamed: StreamedTable, spec: Spec, previous: dict | None):
-    return build_working_set(streamed, spec, previous, batch_rows())
+    return build_working_set(streamed, spec, previous, batch_rows(), _mapper())
+
+
+def _mapper() -> Mapper:
+    """Where the per-partition work of the data path runs: the flow's Dask workers when it runs on Dask (they must
+    reach the run's working folder: one machine or a shared file system), else this process."""
+    client = flow_dask_client()
+    return in_process if client is None else dask_mapper(client)
 
 
 def _fit(ws: WorkingSet, spec: Spec, training, cardinalities: list[int], sizes: list[int], init_vectors,

@@ -52,12 +52,17 @@ def in_process(fn: Callable[[Any], Any], items: list) -> list:
     return [fn(item) for item in items]
 
 
-def dask_mapper(client: Any) -> Mapper:
+def dask_mapper(client: Any, timeout: float | None = None) -> Mapper:
     """Run ``fn`` on every item as Dask tasks (``client.map``, not cached: each call is new work); results come
-    back in the items' order, and a worker's exception is raised here."""
+    back in the items' order, and a worker's exception is raised here. ``timeout`` (seconds): give up waiting
+    (``TimeoutError``) when the tasks have not all finished by then, e.g. when a cluster lost its workers."""
 
     def run(fn: Callable[[Any], Any], items: list) -> list:
-        return client.gather(client.map(fn, items, pure=False))
+        from distributed import wait
+
+        futures = client.map(fn, items, pure=False)
+        wait(futures, timeout=timeout)
+        return client.gather(futures)
 
     return run
 
@@ -116,7 +121,7 @@ def _append_cleaned(parts: list[CleanedPart], path: Path, batch_rows: int) -> No
                 writer.write_table(pa.Table.from_batches([batch]).cast(schema))
                 mapped.release()
             del table
-            mapped.map.close()
+            del batch, mapped  # the mapping goes with the last buffer that points into it
             part.cleaned.unlink()
     finally:
         if writer is not None:
