@@ -26,7 +26,7 @@ from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
 from entivec.tasks.evidence.stability import seed_stability
-from entivec.tasks.ingest.partitioned import Mapper, dask_mapper, in_process, stream_clean_parts
+from entivec.tasks.ingest.partitioned import MERGE, Mapper, dask_mapper, in_process, stream_clean_parts
 from entivec.tasks.ingest.read import InputError, retry_on_io_only
 from entivec.tasks.ingest.stream import (
     BATCH_ROWS,
@@ -275,7 +275,8 @@ def _train_streamed(spec: Spec, spec_text: str, spec_path: str, folder: Path, *,
     streamed = validate_and_clean_stream(spec, spec_path, folder, first)
     ledger = streamed.ledger
     shown.end(ledger.rows_in, f"{ledger.rows_used:,} kept, {ledger.rows_quarantined:,} quarantined, "
-                              f"{streamed.batches} batch(es)")
+                              f"{streamed.batches} batch(es)"
+                              + (", one task per file on the Dask workers" if MERGE in streamed.seconds else ""))
     ev = spec.evaluation
 
     reference, drift_report, notes = None, None, []

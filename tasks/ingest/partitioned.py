@@ -45,6 +45,7 @@ from entivec.tasks.ingest.stream import (
 
 Mapper = Callable[[Callable[[Any], Any], list], list]
 PARTS = "parts"
+MERGE = "merge parts"  # the stage that appends the parts, in StreamedTable.seconds
 
 
 def in_process(fn: Callable[[Any], Any], items: list) -> list:
@@ -55,14 +56,18 @@ def in_process(fn: Callable[[Any], Any], items: list) -> list:
 def dask_mapper(client: Any, timeout: float | None = None) -> Mapper:
     """Run ``fn`` on every item as Dask tasks (``client.map``, not cached: each call is new work); results come
     back in the items' order, and a worker's exception is raised here. ``timeout`` (seconds): give up waiting
-    (``TimeoutError``) when the tasks have not all finished by then, e.g. when a cluster lost its workers."""
+    (``TimeoutError``, the remaining tasks cancelled) when the tasks have not all finished by then, e.g. when a
+    cluster lost its workers. Only this client is used (a flow's runner does not make its client the default)."""
 
     def run(fn: Callable[[Any], Any], items: list) -> list:
-        from distributed import wait
-
         futures = client.map(fn, items, pure=False)
-        wait(futures, timeout=timeout)
-        return client.gather(futures)
+        deadline = None if timeout is None else time.monotonic() + timeout
+        try:
+            return [f.result(timeout=None if deadline is None else max(0.0, deadline - time.monotonic()))
+                    for f in futures]
+        except BaseException:
+            client.cancel(futures)
+            raise
 
     return run
 
@@ -163,6 +168,6 @@ def stream_clean_parts(spec: Spec, folder: Path, first: FirstPass, mapper: Mappe
     _append_cleaned(parts, folder / CLEANED, batch_rows)
     _append_quarantine(parts, folder / QUARANTINE, batch_rows)
     seconds = {"ids and fingerprint": first.seconds, "validate and clean": cleaned_seconds,
-               "merge parts": time.perf_counter() - tick}
+               MERGE: time.perf_counter() - tick}
     return finish_clean(spec, first, folder, [ledger for p in parts for ledger in p.ledgers],
                         sum(p.used for p in parts), [t for p in parts for t in p.tops], seconds)
