@@ -159,7 +159,9 @@ def batch_rows() -> int:
 @task(name="ids-and-fingerprint", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only,
       cache_policy=NO_CACHE)
 def ids_and_fingerprint(spec: Spec, spec_path: str, folder: Path, groups: GroupTally) -> FirstPass:
-    return first_pass(spec, spec_path, folder, batch_rows(), observers=(groups,))
+    # The id partitions are checked on the Dask workers when the flow runs on Dask; the read stays here (the
+    # fingerprint is one digest over the rows in order, and the review groups are tallied on the raw rows).
+    return first_pass(spec, spec_path, folder, batch_rows(), observers=(groups,), mapper=_mapper())
 
 
 @task(name="validate-and-clean", cache_policy=NO_CACHE)

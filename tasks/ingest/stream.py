@@ -96,11 +96,12 @@ def _id_partition(ids: pd.Series) -> np.ndarray:
 
 
 def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: int,
-                   fingerprint: StreamFingerprint | None = None, observers: tuple = ()) -> np.ndarray:
+                   fingerprint: StreamFingerprint | None = None, observers: tuple = (), mapper=None) -> np.ndarray:
     """Sorted positions (in the whole table) of rows whose id another row shares; missing ids are left out.
 
-    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own. The
-    fingerprint and every observer (anything with ``update(frame)``) see each raw batch as read.
+    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own, here or by
+    ``mapper`` (``tasks/ingest/partitioned.py``: e.g. on Dask workers that reach ``folder``). The fingerprint
+    and every observer (anything with ``update(frame)``) see each raw batch as read.
     """
     folder.mkdir(parents=True, exist_ok=True)
     schema = pa.schema([("id", pa.string()), ("row", pa.int64())])
@@ -130,15 +131,22 @@ def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: in
     finally:
         for writer in writers.values():
             writer.close()
-    shared = []
-    for p in sorted(writers):
-        path = folder / f"ids-{p:03d}.arrow"
-        with pa.memory_map(str(path)) as source_file:
-            table = pa.ipc.open_file(source_file).read_all().to_pandas()
-        repeated = table["id"].duplicated(keep=False).to_numpy()
-        shared.append(table["row"].to_numpy()[repeated])
-        path.unlink()
+    shared = (mapper or _in_process)(shared_in_partition, [folder / f"ids-{p:03d}.arrow" for p in sorted(writers)])
     return np.sort(np.concatenate(shared)) if shared else np.zeros(0, dtype=np.int64)
+
+
+def _in_process(fn: object, items: list) -> list:
+    return [fn(item) for item in items]
+
+
+def shared_in_partition(path: Path) -> np.ndarray:
+    """Positions of the rows of one id partition file whose id another row of it shares (every row with a given
+    id is in the same partition); the file is removed. A piece of work a Dask worker can do."""
+    with pa.memory_map(str(path)) as source_file:
+        table = pa.ipc.open_file(source_file).read_all().to_pandas()
+    repeated = table["id"].duplicated(keep=False).to_numpy()
+    path.unlink()
+    return table["row"].to_numpy()[repeated]
 
 
 def _quarantine_schema(source: SourceFiles, spec: Spec) -> pa.Schema:
@@ -176,14 +184,15 @@ class FirstPass:
 
 
 def first_pass(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS,
-               observers: tuple = ()) -> FirstPass:
+               observers: tuple = (), mapper=None) -> FirstPass:
     """Ids and fingerprint (pass 1): the rows whose id is shared, the data's fingerprint and each column's kind as
-    read; ``observers`` (``update(frame)``) see every raw batch too, e.g. the review page's group tally."""
+    read; ``observers`` (``update(frame)``) see every raw batch too, e.g. the review page's group tally.
+    ``mapper``: where the id partitions are checked (default: here)."""
     source = source_files(spec, spec_path)
     fingerprint = StreamFingerprint(source.columns)
     kinds = KindTally()
     tick = time.perf_counter()
-    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint, (kinds, *observers))
+    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint, (kinds, *observers), mapper)
     file_rows = [fingerprint.per_file[n].rows if n in fingerprint.per_file else 0 for n in source.names]
     return FirstPass(source, shared, fingerprint.result(source.names), kinds.result(), time.perf_counter() - tick,
                      file_rows)
