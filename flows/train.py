@@ -61,6 +61,7 @@ RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold network
 IN_MEMORY_ROWS = 1_000_000
 IN_MEMORY_ROWS_VARIABLE = "ENTIVEC_IN_MEMORY_ROWS"
 BATCH_ROWS_VARIABLE = "ENTIVEC_BATCH_ROWS"
+DASK_TIMEOUT_VARIABLE = "ENTIVEC_DASK_TIMEOUT"
 
 
 @dataclass
@@ -191,7 +192,23 @@ def _mapper() -> Mapper:
     """Where the per-partition work of the data path runs: the flow's Dask workers when it runs on Dask (they must
     reach the run's working folder: one machine or a shared file system), else this process."""
     client = flow_dask_client()
-    return in_process if client is None else dask_mapper(client)
+    if client is None:
+        return in_process
+    return dask_mapper(client, dask_timeout())
+
+
+def dask_timeout() -> float | None:
+    """Seconds one stage's Dask tasks may take before the run fails (``ENTIVEC_DASK_TIMEOUT``): unset, no limit."""
+    value = os.environ.get(DASK_TIMEOUT_VARIABLE, "").strip()
+    if not value:
+        return None
+    try:
+        seconds = float(value)
+    except ValueError:
+        seconds = 0.0
+    if not seconds > 0:
+        raise ValueError(f"{DASK_TIMEOUT_VARIABLE} must be a number of seconds above 0, got {value!r}")
+    return seconds
 
 
 def _fit(ws: WorkingSet, spec: Spec, training, cardinalities: list[int], sizes: list[int], init_vectors,

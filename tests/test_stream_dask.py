@@ -183,3 +183,38 @@ def test_partitions_start_where_the_previous_files_end(case, tmp_path):
     assert [(i, offset) for i, offset, _ in placed] == [(i, i * ROWS_PER_FILE) for i in range(FILES)]
     # The two rows sharing an id (positions 5 and 2,717 of the whole table) go to the first and the last file.
     assert [list(shared) for _, _, shared in placed] == [[5], [], [], [3 * ROWS_PER_FILE + 17]]
+
+
+def _run_id(output: str) -> str:
+    return output.split("(run ")[1].split(")")[0]
+
+
+def test_train_command_on_dask_matches_the_single_process_train_on_four_files(case, tmp_path, run_cli, monkeypatch):
+    import json
+
+    from entivec.tasks.lifecycle import registry
+    from entivec.tasks.lifecycle.registry import run_file
+
+    _, _, _, data = case
+    monkeypatch.setenv("ENTIVEC_BATCH_ROWS", str(BATCH))  # several batches per file, as above
+    monkeypatch.setenv("ENTIVEC_DASK_TIMEOUT", str(WAIT))
+    spec = {**SPEC, "source": {"path": str(data / "orders-*.csv")},
+            "evaluation": {"folds": 2, "models": ["linear"], "max_train_rows": 1_000, "seed_check": False}}
+    spec_path = tmp_path / "spec.yaml"
+    spec_path.write_text(yaml.safe_dump(spec, sort_keys=False), encoding="utf-8")
+    code, single = run_cli(["train", str(spec_path)])
+    assert code == 0, single
+    code, on_dask = run_cli(["train", str(spec_path), "--dask", "local", "--workers", "2"])
+    assert code == 0, on_dask
+    assert "one task per file on the Dask workers" in on_dask and "on the Dask workers" not in single
+
+    runs = [_run_id(single), _run_id(on_dask)]
+    ledgers = [json.loads(run_file(r, "data/ledger.json").read_text()) for r in runs]
+    assert ledgers[0] == ledgers[1] and ledgers[0]["rows_in"] == FILES * ROWS_PER_FILE
+    quarantines = [pd.read_parquet(run_file(r, "data/quarantine.parquet")) for r in runs]
+    pd.testing.assert_frame_equal(quarantines[0], quarantines[1])
+    assert (quarantines[0]["_reasons"] == "duplicate_id").sum() == 2
+    first, second = (registry.load_version("shop-orders", v).vector_set for v in ("1", "2"))
+    for column in ("shop", "region"):
+        assert first.vocabularies[column].categories == second.vocabularies[column].categories
+        assert np.array_equal(first.vectors[column], second.vectors[column]), column
