@@ -19,7 +19,7 @@ one ``cleaned.arrow`` and ``quarantine.parquet`` the rest of the run reads.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
@@ -43,14 +43,16 @@ from entivec.tasks.ingest.stream import (
     finish_clean,
 )
 
-Mapper = Callable[[Callable[[Any], Any], list], list]
+# fn, items -> fn(item) for every item, in the items' order, as an iterator: a caller that sums the results
+# holds one at a time (counts of 400 ranges of 50,000 categories each would otherwise all wait in memory).
+Mapper = Callable[[Callable[[Any], Any], list], Iterator[Any]]
 PARTS = "parts"
 MERGE = "merge parts"  # the stage that appends the parts, in StreamedTable.seconds
 
 
-def in_process(fn: Callable[[Any], Any], items: list) -> list:
-    """Run ``fn`` on every item here, in order."""
-    return [fn(item) for item in items]
+def in_process(fn: Callable[[Any], Any], items: list) -> Iterator[Any]:
+    """Run ``fn`` on every item here, in order, each when its result is asked for."""
+    return (fn(item) for item in items)
 
 
 def dask_mapper(client: Any, timeout: float | None = None) -> Mapper:
@@ -59,15 +61,16 @@ def dask_mapper(client: Any, timeout: float | None = None) -> Mapper:
     (``TimeoutError``, the remaining tasks cancelled) when the tasks have not all finished by then, e.g. when a
     cluster lost its workers. Only this client is used (a flow's runner does not make its client the default)."""
 
-    def run(fn: Callable[[Any], Any], items: list) -> list:
-        futures = client.map(fn, items, pure=False)
+    def run(fn: Callable[[Any], Any], items: list) -> Iterator[Any]:
+        futures = client.map(fn, items, pure=False)  # all submitted now; the workers need not wait for the caller
         deadline = None if timeout is None else time.monotonic() + timeout
         try:
-            return [f.result(timeout=None if deadline is None else max(0.0, deadline - time.monotonic()))
-                    for f in futures]
-        except BaseException:
-            client.cancel(futures)
-            raise
+            while futures:
+                future = futures.pop(0)  # released once read: its result leaves the worker's memory
+                yield future.result(timeout=None if deadline is None else max(0.0, deadline - time.monotonic()))
+        finally:
+            if futures:
+                client.cancel(futures)
 
     return run
 
@@ -160,7 +163,7 @@ def stream_clean_parts(spec: Spec, folder: Path, first: FirstPass, mapper: Mappe
     parts_folder = folder / PARTS
     parts_folder.mkdir(parents=True, exist_ok=True)
     work = partial(clean_file, spec=spec, source=first.source, folder=parts_folder, batch_rows=batch_rows)
-    parts: list[CleanedPart] = mapper(work, partitions(first))
+    parts: list[CleanedPart] = list(mapper(work, partitions(first)))
     if [p.index for p in parts] != list(range(len(first.source.paths))):
         raise InputError("the partitions came back incomplete or out of order")
     cleaned_seconds = time.perf_counter() - tick

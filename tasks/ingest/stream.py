@@ -131,7 +131,8 @@ def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: in
     finally:
         for writer in writers.values():
             writer.close()
-    shared = (mapper or _in_process)(shared_in_partition, [folder / f"ids-{p:03d}.arrow" for p in sorted(writers)])
+    shared = list((mapper or _in_process)(shared_in_partition,
+                                          [folder / f"ids-{p:03d}.arrow" for p in sorted(writers)]))
     return np.sort(np.concatenate(shared)) if shared else np.zeros(0, dtype=np.int64)
 
 

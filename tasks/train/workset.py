@@ -299,14 +299,16 @@ def build_working_set(
     counts = {c: pd.Series(dtype=np.int64) for c in spec.embed_names}
     missing = dict.fromkeys(spec.embed_names, 0)
     levels: dict[str, set[str]] = {c: set() for c in spec.onehot_names}
-    for part in counted:
+    flags = []
+    for part in counted:  # summed as they come, so one range's counts are held at a time
+        flags.append(part.is_test)
         for c in spec.embed_names:
             counts[c] = counts[c].add(part.counts[c], fill_value=0)
             missing[c] += part.missing[c]
         for c in spec.onehot_names:
             levels[c].update(part.levels[c])
-    is_test = np.concatenate([part.is_test for part in counted]) if counted else np.zeros(0, dtype=bool)
-    del counted
+    is_test = np.concatenate(flags) if flags else np.zeros(0, dtype=bool)
+    del counted, flags
     n_train, n_test = int((~is_test).sum()), int(is_test.sum())
     if n_train == 0 or n_test == 0:
         raise _empty_part(streamed, spec, n_train, cutoff, batch_rows)
@@ -336,7 +338,7 @@ def build_working_set(
             del array
     held = np.concatenate([[0], np.cumsum(is_test, dtype=np.int64)])
     items = [(lo, hi, is_test[lo:hi], int(lo - held[lo]), int(held[lo])) for lo, hi in ranges]
-    written = mapper(partial(encode_range, cleaned=streamed.cleaned, spec=spec, encoder=encoder, ws=ws), items)
-    if sum(written) != n:
-        raise RuntimeError(f"encoding wrote {sum(written)} of {n} cleaned rows")
+    written = sum(mapper(partial(encode_range, cleaned=streamed.cleaned, spec=spec, encoder=encoder, ws=ws), items))
+    if written != n:
+        raise RuntimeError(f"encoding wrote {written} of {n} cleaned rows")
     return ws, vocabularies, encoder
