@@ -265,6 +265,9 @@ def train(
     downstream evidence and the review groups read bounded seeded samples or tallies. The one choice made by
     size: up to ``in_memory_rows()`` training rows the network trains from the encoded arrays in memory (the
     whole-table trainer, so such a table gets the numbers it always got), above it from the working set's blocks.
+    On Dask (``run_flow(train, ...)`` with ``--dask``), the id partitions, validation and cleaning (a task per file),
+    counting and encoding (a task per range of rows) run on the workers with the same results
+    (``tasks/ingest/partitioned.py``); training stays in this process.
     """
     if warm_start and not (incremental or vocabulary_from):
         raise ValueError("warm_start needs a version to start from: incremental=True (production) or vocabulary_from")
