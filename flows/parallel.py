@@ -6,7 +6,8 @@ afterwards; ``task_runner("tcp://host:8786")`` connects to a running scheduler; 
 with the chosen runner and makes sure the Dask workers report to the same Prefect server as the flow.
 
 Only work submitted from a flow body reaches the runner: cross-fitting folds (``tasks/evidence/crossfit.py``), sweep
-candidates (``flows.sweep``), whole train runs (``flows.sweep.train_many``).
+candidates (``flows.sweep``), whole train runs (``flows.sweep.train_many``), and the train flow's per-partition
+ingestion, counting and encoding, which take the runner's client (``flow_dask_client``).
 """
 
 from __future__ import annotations
@@ -114,6 +115,17 @@ def prefect_api_for_workers(runner: TaskRunner | None) -> Iterator[None]:
     server.start()
     with temporary_settings(updates={PREFECT_API_URL: server.api_url}):
         yield
+
+
+def flow_dask_client() -> Any | None:
+    """The Dask client of the running flow's task runner, or None when the flow does not run on Dask (its work
+    then stays in this process)."""
+    from prefect.context import FlowRunContext
+
+    runner = getattr(FlowRunContext.get(), "task_runner", None)
+    if type(runner).__name__ != "DaskTaskRunner":
+        return None
+    return runner.client
 
 
 def run_flow(flow: Flow, dask: str | None = None, *, workers: int = DEFAULT_WORKERS, **parameters: Any) -> Any:

@@ -17,6 +17,7 @@ from prefect.cache_policies import NO_CACHE
 from prefect.transactions import transaction
 
 from entivec import progress
+from entivec.flows.parallel import flow_dask_client
 from entivec.schemas.spec import Spec, load_spec
 from entivec.schemas.vector_set import column_file_stem
 from entivec.settings import project_home
@@ -25,6 +26,7 @@ from entivec.tasks.evidence.crossfit import cross_fit_vectors, vectors_for_ids
 from entivec.tasks.evidence.downstream import capped_rows, evaluate_downstream
 from entivec.tasks.evidence.metrics import task_metrics
 from entivec.tasks.evidence.stability import seed_stability
+from entivec.tasks.ingest.partitioned import MERGE, Mapper, dask_mapper, in_process, stream_clean_parts
 from entivec.tasks.ingest.read import InputError, retry_on_io_only
 from entivec.tasks.ingest.stream import (
     BATCH_ROWS,
@@ -59,6 +61,7 @@ RESEED = 1_000  # the seed check's network: training.seed + RESEED (fold network
 IN_MEMORY_ROWS = 1_000_000
 IN_MEMORY_ROWS_VARIABLE = "ENTIVEC_IN_MEMORY_ROWS"
 BATCH_ROWS_VARIABLE = "ENTIVEC_BATCH_ROWS"
+DASK_TIMEOUT_VARIABLE = "ENTIVEC_DASK_TIMEOUT"
 
 
 @dataclass
@@ -157,13 +160,19 @@ def batch_rows() -> int:
 @task(name="ids-and-fingerprint", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only,
       cache_policy=NO_CACHE)
 def ids_and_fingerprint(spec: Spec, spec_path: str, folder: Path, groups: GroupTally) -> FirstPass:
-    return first_pass(spec, spec_path, folder, batch_rows(), observers=(groups,))
+    # The id partitions are checked on the Dask workers when the flow runs on Dask; the read stays here (the
+    # fingerprint is one digest over the rows in order, and the review groups are tallied on the raw rows).
+    return first_pass(spec, spec_path, folder, batch_rows(), observers=(groups,), mapper=_mapper())
 
 
 @task(name="validate-and-clean", cache_policy=NO_CACHE)
 def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: FirstPass) -> StreamedTable:
-    """The second pass; when every row is quarantined the quarantine is kept under the project folder first."""
+    """The second pass; when every row is quarantined the quarantine is kept under the project folder first. On
+    Dask, one file per worker task (``tasks/ingest/partitioned.py``), the same rows as the stream gives."""
     try:
+        mapper = _mapper()
+        if mapper is not in_process:
+            return stream_clean_parts(spec, folder, first, mapper, batch_rows())
         return stream_clean(spec, spec_path, folder, batch_rows(), first=first)
     except InputError as error:
         kept = folder / QUARANTINE
@@ -176,7 +185,30 @@ def validate_and_clean_stream(spec: Spec, spec_path: str, folder: Path, first: F
 
 @task(name="working-set", cache_policy=NO_CACHE)
 def working_set_task(streamed: StreamedTable, spec: Spec, previous: dict | None):
-    return build_working_set(streamed, spec, previous, batch_rows())
+    return build_working_set(streamed, spec, previous, batch_rows(), _mapper())
+
+
+def _mapper() -> Mapper:
+    """Where the per-partition work of the data path runs: the flow's Dask workers when it runs on Dask (they must
+    reach the run's working folder: one machine or a shared file system), else this process."""
+    client = flow_dask_client()
+    if client is None:
+        return in_process
+    return dask_mapper(client, dask_timeout())
+
+
+def dask_timeout() -> float | None:
+    """Seconds one stage's Dask tasks may take before the run fails (``ENTIVEC_DASK_TIMEOUT``): unset, no limit."""
+    value = os.environ.get(DASK_TIMEOUT_VARIABLE, "").strip()
+    if not value:
+        return None
+    try:
+        seconds = float(value)
+    except ValueError:
+        seconds = 0.0
+    if not seconds > 0:
+        raise ValueError(f"{DASK_TIMEOUT_VARIABLE} must be a number of seconds above 0, got {value!r}")
+    return seconds
 
 
 def _fit(ws: WorkingSet, spec: Spec, training, cardinalities: list[int], sizes: list[int], init_vectors,
@@ -233,6 +265,9 @@ def train(
     downstream evidence and the review groups read bounded seeded samples or tallies. The one choice made by
     size: up to ``in_memory_rows()`` training rows the network trains from the encoded arrays in memory (the
     whole-table trainer, so such a table gets the numbers it always got), above it from the working set's blocks.
+    On Dask (``run_flow(train, ...)`` with ``--dask``), the id partitions, validation and cleaning (a task per file),
+    counting and encoding (a task per range of rows) run on the workers with the same results
+    (``tasks/ingest/partitioned.py``); training stays in this process.
     """
     if warm_start and not (incremental or vocabulary_from):
         raise ValueError("warm_start needs a version to start from: incremental=True (production) or vocabulary_from")
@@ -262,7 +297,8 @@ def _train_streamed(spec: Spec, spec_text: str, spec_path: str, folder: Path, *,
     streamed = validate_and_clean_stream(spec, spec_path, folder, first)
     ledger = streamed.ledger
     shown.end(ledger.rows_in, f"{ledger.rows_used:,} kept, {ledger.rows_quarantined:,} quarantined, "
-                              f"{streamed.batches} batch(es)")
+                              f"{streamed.batches} batch(es)"
+                              + (", one task per file on the Dask workers" if MERGE in streamed.seconds else ""))
     ev = spec.evaluation
 
     reference, drift_report, notes = None, None, []

@@ -220,6 +220,8 @@ def test_train_command_with_a_local_dask_cluster_matches_the_sequential_train(
     code, output = run_cli(["train", spec_path, "--dask", "local", "--workers", "2"])
     assert code == 0, output
     assert "version 2" in output
+    # Validation and cleaning ran as Dask tasks, one per file (tests/test_stream_dask.py checks the parts).
+    assert "one task per file on the Dask workers" in output
 
     client = registry.client()
     runs = [client.get_run(registry.resolve("stone-prices", v).run_id) for v in ("1", "2")]

@@ -96,11 +96,12 @@ def _id_partition(ids: pd.Series) -> np.ndarray:
 
 
 def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: int,
-                   fingerprint: StreamFingerprint | None = None, observers: tuple = ()) -> np.ndarray:
+                   fingerprint: StreamFingerprint | None = None, observers: tuple = (), mapper=None) -> np.ndarray:
     """Sorted positions (in the whole table) of rows whose id another row shares; missing ids are left out.
 
-    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own. The
-    fingerprint and every observer (anything with ``update(frame)``) see each raw batch as read.
+    Ids are hash-partitioned to Arrow files under ``folder`` and each partition is checked on its own, here or by
+    ``mapper`` (``tasks/ingest/partitioned.py``: e.g. on Dask workers that reach ``folder``). The fingerprint
+    and every observer (anything with ``update(frame)``) see each raw batch as read.
     """
     folder.mkdir(parents=True, exist_ok=True)
     schema = pa.schema([("id", pa.string()), ("row", pa.int64())])
@@ -130,15 +131,23 @@ def shared_id_rows(spec: Spec, source: SourceFiles, folder: Path, batch_rows: in
     finally:
         for writer in writers.values():
             writer.close()
-    shared = []
-    for p in sorted(writers):
-        path = folder / f"ids-{p:03d}.arrow"
-        with pa.memory_map(str(path)) as source_file:
-            table = pa.ipc.open_file(source_file).read_all().to_pandas()
-        repeated = table["id"].duplicated(keep=False).to_numpy()
-        shared.append(table["row"].to_numpy()[repeated])
-        path.unlink()
+    shared = list((mapper or _in_process)(shared_in_partition,
+                                          [folder / f"ids-{p:03d}.arrow" for p in sorted(writers)]))
     return np.sort(np.concatenate(shared)) if shared else np.zeros(0, dtype=np.int64)
+
+
+def _in_process(fn: object, items: list) -> list:
+    return [fn(item) for item in items]
+
+
+def shared_in_partition(path: Path) -> np.ndarray:
+    """Positions of the rows of one id partition file whose id another row of it shares (every row with a given
+    id is in the same partition); the file is removed. A piece of work a Dask worker can do."""
+    with pa.memory_map(str(path)) as source_file:
+        table = pa.ipc.open_file(source_file).read_all().to_pandas()
+    repeated = table["id"].duplicated(keep=False).to_numpy()
+    path.unlink()
+    return table["row"].to_numpy()[repeated]
 
 
 def _quarantine_schema(source: SourceFiles, spec: Spec) -> pa.Schema:
@@ -172,18 +181,74 @@ class FirstPass:
     fingerprint: dict
     data_columns: dict[str, str]
     seconds: float
+    file_rows: list[int] = field(default_factory=list)  # rows read from each file, in the source's order
 
 
 def first_pass(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS,
-               observers: tuple = ()) -> FirstPass:
+               observers: tuple = (), mapper=None) -> FirstPass:
     """Ids and fingerprint (pass 1): the rows whose id is shared, the data's fingerprint and each column's kind as
-    read; ``observers`` (``update(frame)``) see every raw batch too, e.g. the review page's group tally."""
+    read; ``observers`` (``update(frame)``) see every raw batch too, e.g. the review page's group tally.
+    ``mapper``: where the id partitions are checked (default: here)."""
     source = source_files(spec, spec_path)
     fingerprint = StreamFingerprint(source.columns)
     kinds = KindTally()
     tick = time.perf_counter()
-    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint, (kinds, *observers))
-    return FirstPass(source, shared, fingerprint.result(source.names), kinds.result(), time.perf_counter() - tick)
+    shared = shared_id_rows(spec, source, folder / "ids", batch_rows, fingerprint, (kinds, *observers), mapper)
+    file_rows = [fingerprint.per_file[n].rows if n in fingerprint.per_file else 0 for n in source.names]
+    return FirstPass(source, shared, fingerprint.result(source.names), kinds.result(), time.perf_counter() - tick,
+                     file_rows)
+
+
+def newer(newest: object, top: object) -> object:
+    """The newest time so far after a batch whose newest time is ``top`` (batches taken in read order)."""
+    return top if newest is None or (pd.notna(top) and top > newest) else newest
+
+
+class CleanWriter:
+    """Validates and cleans batches in read order (:func:`validate_and_clean`, told which rows share an id),
+    appending cleaned rows to one Arrow file and rejected rows with every reason to one Parquet file.
+
+    The one per-batch code path: the single-process stream feeds it every batch of the table, a Dask worker the
+    batches of one file (``tasks/ingest/partitioned.py``); what it keeps per batch (ledgers, newest times) is
+    summed by the caller in batch order, so both give the same table.
+    """
+
+    def __init__(self, spec: Spec, source: SourceFiles, shared: np.ndarray, cleaned: Path, quarantine: Path) -> None:
+        self.spec, self.source, self.shared, self.cleaned_path = spec, source, shared, cleaned
+        self.q_schema = _quarantine_schema(source, spec)
+        self.quarantine = pq.ParquetWriter(quarantine, self.q_schema)
+        self.cleaned: pa.ipc.RecordBatchFileWriter | None = None
+        self.schema: pa.Schema | None = None
+        self.ledgers: list[Ledger] = []
+        self.tops: list[object] = []  # each batch's newest time (split.time_column) among its cleaned rows
+        self.used = 0
+
+    def add(self, offset: int, frame: pd.DataFrame) -> None:
+        """Clean one batch whose first row is at ``offset`` in the whole table."""
+        lo, hi = np.searchsorted(self.shared, [offset, offset + len(frame)])
+        result = validate_and_clean(frame, self.spec, self.source.names, duplicates=self.shared[lo:hi] - offset,
+                                    first_row_id=offset + 1, allow_empty=True)
+        self.ledgers.append(result.ledger)
+        if len(result.quarantine):
+            self.quarantine.write_table(quarantine_table(result.quarantine, self.q_schema))
+        if not len(result.frame):
+            return
+        typed = result.frame
+        table = pa.Table.from_pandas(typed, preserve_index=False)
+        if self.cleaned is None:
+            self.schema = table.schema
+            self.cleaned = pa.ipc.new_file(str(self.cleaned_path), self.schema)
+        else:
+            table = table.cast(self.schema)
+        self.cleaned.write_table(table)
+        self.used += table.num_rows
+        if self.spec.split.time_column:
+            self.tops.append(parse_times(typed[self.spec.split.time_column]).max())
+
+    def close(self) -> None:
+        for writer in (self.cleaned, self.quarantine):
+            if writer is not None:
+                writer.close()
 
 
 def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: int = BATCH_ROWS,
@@ -195,46 +260,28 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
     for the caller to keep), as the whole-table path does.
     """
     first = first or first_pass(spec, spec_path, folder, batch_rows)
-    source, shared = first.source, first.shared
-    seconds = {"ids and fingerprint": first.seconds}
     tick = time.perf_counter()
-    ledger = Ledger(rows_in=0, files=source.names)
-    cleaned_writer = quarantine_writer = None
-    cleaned_schema = None
-    q_schema = _quarantine_schema(source, spec)
-    newest = None
-    count = used = 0
-    time_column = spec.split.time_column
+    writer = CleanWriter(spec, first.source, first.shared, folder / CLEANED, folder / QUARANTINE)
     try:
-        quarantine_writer = pq.ParquetWriter(folder / QUARANTINE, q_schema)
-        for offset, frame in batches(spec, source, batch_rows):
-            count += 1
-            lo, hi = np.searchsorted(shared, [offset, offset + len(frame)])
-            result = validate_and_clean(frame, spec, source.names, duplicates=shared[lo:hi] - offset,
-                                        first_row_id=offset + 1, allow_empty=True)
-            ledger.add(result.ledger)
-            if len(result.quarantine):
-                quarantine_writer.write_table(quarantine_table(result.quarantine, q_schema))
-            if not len(result.frame):
-                continue
-            typed = result.frame
-            table = pa.Table.from_pandas(typed, preserve_index=False)
-            if cleaned_writer is None:
-                cleaned_schema = table.schema
-                cleaned_writer = pa.ipc.new_file(str(folder / CLEANED), cleaned_schema)
-            else:
-                table = table.cast(cleaned_schema)
-            cleaned_writer.write_table(table)
-            used += table.num_rows
-            if time_column:
-                times = parse_times(typed[time_column])
-                top = times.max()
-                newest = top if newest is None or (pd.notna(top) and top > newest) else newest
+        for offset, frame in batches(spec, first.source, batch_rows):
+            writer.add(offset, frame)
     finally:
-        for writer in (cleaned_writer, quarantine_writer):
-            if writer is not None:
-                writer.close()
-    seconds["validate and clean"] = time.perf_counter() - tick
+        writer.close()
+    return finish_clean(spec, first, folder, writer.ledgers, writer.used, writer.tops,
+                        {"ids and fingerprint": first.seconds, "validate and clean": time.perf_counter() - tick})
+
+
+def finish_clean(spec: Spec, first: FirstPass, folder: Path, ledgers: list[Ledger], used: int, tops: list[object],
+                 seconds: dict[str, float]) -> StreamedTable:
+    """The batch ledgers summed in read order and checked (rows in = used + quarantined), the newest time; raises
+    InputError when no row survives."""
+    source = first.source
+    ledger = Ledger(rows_in=0, files=source.names)
+    for part in ledgers:
+        ledger.add(part)
+    newest = None
+    for top in tops:
+        newest = newer(newest, top)
     quarantined = pq.ParquetFile(folder / QUARANTINE).metadata.num_rows
     ledger.check(used, quarantined)
     if used == 0:
@@ -242,8 +289,8 @@ def stream_clean(spec: Spec, spec_path: str | Path, folder: Path, batch_rows: in
         summary = ", ".join(f"{reason} ({rows})" for reason, rows in top)
         raise InputError(f"{', '.join(source.names)}: all {ledger.rows_in} row(s) were quarantined; most common "
                          f"reasons: {summary}", ledger=ledger)
-    return StreamedTable(folder, ledger, first.fingerprint, source.names, len(shared), newest, count, seconds,
-                         first.data_columns)
+    return StreamedTable(folder, ledger, first.fingerprint, source.names, len(first.shared), newest, len(ledgers),
+                         seconds, first.data_columns)
 
 
 class MappedFile:

@@ -12,6 +12,9 @@ Built from the cleaned rows a streamed ingestion wrote (``tasks/ingest/stream.py
 3. **Encode.** Each batch is encoded by the fitted :class:`FeatureEncoder` and written into preallocated
    memory-mapped arrays, training rows and held-out rows apart.
 
+Counting and encoding take ranges of cleaned rows, one piece of work each, run here or on Dask workers that reach
+the run's folder (``tasks/ingest/partitioned.py``'s ``Mapper``); only the sums come back.
+
 :meth:`WorkingSet.blocks` reads the training arrays back as blocks of pieces from random places, shuffled
 inside each block, releasing the pages after each block, so memory stays at one block.
 """
@@ -22,6 +25,7 @@ import math
 import mmap
 from collections.abc import Iterator
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -30,14 +34,17 @@ import pandas as pd
 from entivec.schemas.spec import Spec
 from entivec.schemas.tables import parse_times
 from entivec.schemas.vocabulary import Vocabulary, category_strings
+from entivec.tasks.ingest.partitioned import Mapper, in_process
 from entivec.tasks.ingest.read import InputError
 from entivec.tasks.ingest.split import rolling_cutoff, test_mask
 from entivec.tasks.ingest.stream import (
     BATCH_ROWS,
     CLEANED,
+    MappedFile,
     StreamedTable,
     cleaned_column,
     cleaned_rows,
+    cleaned_table,
     read_cleaned,
 )
 from entivec.tasks.train import targets
@@ -214,33 +221,114 @@ def _empty_part(streamed: StreamedTable, spec: Spec, n_train: int, cutoff: objec
                       f"from {low} to {high}")
 
 
+@dataclass
+class CountedRange:
+    """What counting one range of cleaned rows found: which are held out, and its training rows' categories."""
+
+    is_test: np.ndarray
+    counts: dict[str, pd.Series]
+    missing: dict[str, int]
+    levels: dict[str, set[str]]
+
+
+def row_ranges(n: int, rows: int) -> list[tuple[int, int]]:
+    """[start, stop) ranges of at most ``rows`` cleaned rows covering ``n`` rows in order."""
+    return [(lo, min(lo + rows, n)) for lo in range(0, n, rows)]
+
+
+def _cleaned_range(cleaned: Path, lo: int, hi: int, columns: list[str] | None = None) -> pd.DataFrame:
+    mapped = MappedFile(cleaned)
+    table = cleaned_table(cleaned, mapped).slice(lo, hi - lo)
+    frame = (table.select(columns) if columns is not None else table).to_pandas()
+    mapped.release()
+    return frame
+
+
+def count_range(item: tuple[int, int, np.ndarray | None], *, cleaned: Path, spec: Spec,
+                cutoff: object) -> CountedRange:
+    """Split cleaned rows [lo, hi) (``drawn``: their side when the split was drawn over the whole table) and count
+    the categories and one-hot levels of their training rows."""
+    lo, hi, drawn = item
+    frame = _cleaned_range(cleaned, lo, hi)
+    test = np.asarray(drawn) if drawn is not None else _split_mask(frame, spec, cutoff)
+    train = frame[~test]
+    counts, missing, levels = {}, {}, {}
+    for c in spec.embed_names:
+        strings = category_strings(train[c])
+        counts[c] = strings.value_counts(dropna=True)
+        missing[c] = int(strings.isna().sum())
+    for c in spec.onehot_names:
+        levels[c] = {str(v) for v in category_strings(train[c]).dropna().unique()}
+    return CountedRange(test, counts, missing, levels)
+
+
+def _header_bytes(path: Path) -> int:
+    array = np.load(path, mmap_mode="r")
+    offset = array.offset
+    del array
+    return offset
+
+
+def encode_range(item: tuple[int, int, np.ndarray, int, int], *, cleaned: Path, spec: Spec, encoder: FeatureEncoder,
+                 ws: WorkingSet) -> int:
+    """Encode cleaned rows [lo, hi) (``test``: which are held out) into the working set's preallocated arrays at
+    rows ``at_train`` and ``at_test`` of each part; returns the rows written.
+
+    Written with plain positioned file writes of whole rows, not through a shared memory map: several processes,
+    on one machine or over a shared file system, each write their own byte range, and no page is ever shared.
+    """
+    lo, hi, test, at_train, at_test = item
+    frame = _cleaned_range(cleaned, lo, hi)
+    target = spec.target.column
+    for part, rows, at in (("train", frame[~test], at_train), ("test", frame[test], at_test)):
+        if not len(rows):
+            continue
+        encoded = encoder.transform(rows)
+        y = rows[target].to_numpy(dtype=np.float64)
+        if part == "train":
+            y = targets.forward(y, spec.target.transform)
+        values = (encoded.cat_ids.astype(np.int32), encoded.dense.astype(np.float32), y.astype(np.float64))
+        for what, block in zip(("ids", "dense", "y"), values, strict=True):
+            path = ws.path(part, what)
+            row_bytes = block.itemsize * int(np.prod(block.shape[1:], dtype=np.int64))
+            with open(path, "r+b") as handle:
+                handle.seek(_header_bytes(path) + at * row_bytes)
+                handle.write(np.ascontiguousarray(block).tobytes())
+    return len(frame)
+
+
 def build_working_set(
     streamed: StreamedTable, spec: Spec, previous: dict[str, Vocabulary] | None = None,
-    batch_rows: int = BATCH_ROWS,
+    batch_rows: int = BATCH_ROWS, mapper: Mapper = in_process,
 ) -> tuple[WorkingSet, dict[str, Vocabulary], FeatureEncoder]:
-    """Split, count, fit the encoder and encode the cleaned rows of ``streamed`` into its folder."""
+    """Split, count, fit the encoder and encode the cleaned rows of ``streamed`` into its folder.
+
+    Counting and encoding are done per range of ``batch_rows`` cleaned rows by ``mapper`` (here, or on Dask
+    workers that reach the folder); counts are summed and ranges placed in row order, so the result does not
+    depend on where the ranges ran. The numeric statistics (medians) need a whole column and stay here.
+    """
     cutoff = rolling_cutoff(pd.Series([streamed.newest_time]), spec.split) if spec.split.last_weeks else None
-    drawn = random_test_rows(streamed.ledger.rows_used, spec) if spec.split.method == "random" else None
+    n = streamed.ledger.rows_used
+    drawn = random_test_rows(n, spec) if spec.split.method == "random" else None
     previous = previous or {}
+    ranges = row_ranges(n, batch_rows)
+    items = [(lo, hi, None if drawn is None else drawn[lo:hi]) for lo, hi in ranges]
+    del drawn
+    counted = mapper(partial(count_range, cleaned=streamed.cleaned, spec=spec, cutoff=cutoff), items)
+    del items
     counts = {c: pd.Series(dtype=np.int64) for c in spec.embed_names}
     missing = dict.fromkeys(spec.embed_names, 0)
     levels: dict[str, set[str]] = {c: set() for c in spec.onehot_names}
-    is_test = np.zeros(0, dtype=bool)
-    parts = []
-    seen = 0
-    for frame in read_cleaned(streamed.cleaned, batch_rows=batch_rows):
-        test = drawn[seen: seen + len(frame)] if drawn is not None else _split_mask(frame, spec, cutoff)
-        seen += len(frame)
-        parts.append(test)
-        train = frame[~test]
+    flags = []
+    for part in counted:  # summed as they come, so one range's counts are held at a time
+        flags.append(part.is_test)
         for c in spec.embed_names:
-            strings = category_strings(train[c])
-            counts[c] = counts[c].add(strings.value_counts(dropna=True), fill_value=0)
-            missing[c] += int(strings.isna().sum())
+            counts[c] = counts[c].add(part.counts[c], fill_value=0)
+            missing[c] += part.missing[c]
         for c in spec.onehot_names:
-            levels[c].update(str(v) for v in category_strings(train[c]).dropna().unique())
-    is_test = np.concatenate(parts) if parts else is_test
-    del drawn, parts
+            levels[c].update(part.levels[c])
+    is_test = np.concatenate(flags) if flags else np.zeros(0, dtype=bool)
+    del counted, flags
     n_train, n_test = int((~is_test).sum()), int(is_test.sum())
     if n_train == 0 or n_test == 0:
         raise _empty_part(streamed, spec, n_train, cutoff, batch_rows)
@@ -262,33 +350,15 @@ def build_working_set(
     ws = WorkingSet(folder, list(spec.embed_names), encoder.dense_names, {"train": n_train, "test": n_test})
     k, d = len(spec.embed_names), len(encoder.dense_names)
     # Targets in float64, as the in-memory path keeps them: a table that fits trains on the very same numbers.
-    out = {p: (_open(ws.path(p, "ids"), (ws.rows[p], k), "int32"), _open(ws.path(p, "dense"), (ws.rows[p], d),
-                                                                         "float32"),
-               _open(ws.path(p, "y"), (ws.rows[p],), "float64")) for p in PARTS}
-    at = dict.fromkeys(PARTS, 0)
-    seen = 0
-    target = spec.target.column
-    for frame in read_cleaned(streamed.cleaned, batch_rows=batch_rows):
-        test = is_test[seen: seen + len(frame)]
-        seen += len(frame)
-        for part, rows in (("train", frame[~test]), ("test", frame[test])):
-            if not len(rows):
-                continue
-            encoded = encoder.transform(rows)
-            y = rows[target].to_numpy(dtype=np.float64)
-            if part == "train":
-                y = targets.forward(y, spec.target.transform)
-            ids, dense, yy = out[part]
-            lo, hi = at[part], at[part] + len(rows)
-            ids[lo:hi] = encoded.cat_ids
-            dense[lo:hi] = encoded.dense
-            yy[lo:hi] = y
-            at[part] = hi
-            for array in out[part]:
-                array.flush()
-                release(array)
-    for arrays in out.values():
-        for array in arrays:
+    for p in PARTS:  # preallocated here; the ranges write into them
+        for what, shape, dtype in (("ids", (ws.rows[p], k), "int32"), ("dense", (ws.rows[p], d), "float32"),
+                                   ("y", (ws.rows[p],), "float64")):
+            array = _open(ws.path(p, what), shape, dtype)
             array.flush()
             del array
+    held = np.concatenate([[0], np.cumsum(is_test, dtype=np.int64)])
+    items = [(lo, hi, is_test[lo:hi], int(lo - held[lo]), int(held[lo])) for lo, hi in ranges]
+    written = sum(mapper(partial(encode_range, cleaned=streamed.cleaned, spec=spec, encoder=encoder, ws=ws), items))
+    if written != n:
+        raise RuntimeError(f"encoding wrote {written} of {n} cleaned rows")
     return ws, vocabularies, encoder
