@@ -60,7 +60,11 @@ class KindTally:
                 continue
             series = frame[column]
             present = series[series.notna()]
-            self.values.setdefault(str(column), []).append((present if len(present) else series).iloc[:1])
+            first = (present if len(present) else series).iloc[:1]
+            # Rebuilt from its value: a slice (and an Arrow-backed ".copy()", which shares the immutable buffers)
+            # would keep the whole batch's column alive, for every batch of the table (1 GiB at 10 M rows).
+            self.values.setdefault(str(column), []).append(
+                pd.Series(first.to_list(), dtype=first.dtype, index=first.index, name=first.name))
 
     def result(self) -> dict[str, str]:
         return {c: value_kind(pd.concat(parts, ignore_index=True) if len(parts) > 1 else parts[0])

@@ -332,11 +332,37 @@ def read_cleaned(path: Path, columns: list[str] | None = None, batch_rows: int =
         yield frame
 
 
+TAKE_ROWS = 2_048  # rows fetched by position between two hand-backs of the mapped pages
+
+
 def cleaned_rows(path: Path, positions: np.ndarray) -> pd.DataFrame:
     """The cleaned rows at ``positions`` (in the cleaned table's order) as one pandas frame, in that order: for a
-    bounded sample; only the pages holding those rows are read, and they are handed back."""
+    bounded sample; only the pages holding those rows are read.
+
+    Taken record batch by record batch (Arrow's take on a whole chunked column joins its chunks into one array
+    first: a copy of the column, 2.4 GiB more at 10 M rows, measured), at most ``TAKE_ROWS`` positions at a time
+    with the mapped pages handed back after each: rows from random places touch a page per row and column.
+    """
     mapped = MappedFile(path)
-    frame = cleaned_table(path, mapped).take(pa.array(np.asarray(positions, dtype=np.int64))).to_pandas()
+    table = cleaned_table(path, mapped)
+    at = np.asarray(positions, dtype=np.int64)
+    batches = table.to_batches()
+    starts = np.cumsum([0] + [b.num_rows for b in batches])
+    order = np.argsort(at, kind="stable")
+    ordered = at[order]
+    which = np.searchsorted(starts, ordered, side="right") - 1
+    parts = []
+    for b in np.unique(which):
+        inside = ordered[which == b] - starts[b]
+        for start in range(0, len(inside), TAKE_ROWS):  # a copy each: no longer the mapped pages
+            parts.append(pa.Table.from_batches([batches[b].take(pa.array(inside[start:start + TAKE_ROWS]))]))
+            mapped.release()
+    taken = pa.concat_tables(parts) if parts else table.slice(0, 0)
+    if len(at) and not np.array_equal(order, np.arange(len(at))):  # back to the order asked for (a sample's size)
+        back = np.empty_like(order)
+        back[order] = np.arange(len(order))
+        taken = taken.take(pa.array(back))
+    frame = taken.to_pandas()
     mapped.release()
     return frame
 
