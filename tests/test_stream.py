@@ -275,3 +275,21 @@ def test_column_kinds_keep_no_batch_alive():
     assert pa.total_allocated_bytes() - baseline < 1 << 20  # four batches of about 2.5 MB each were let go
     assert tally.result() == {"name": value_kind(pd.Series(["depot-0-0"], dtype=pd.ArrowDtype(pa.string()))),
                               "n": value_kind(pd.Series([0], dtype=pd.ArrowDtype(pa.int64())))}
+
+
+def test_rows_gathered_from_a_memory_map_equal_numpys_take(tmp_path):
+    """``take_rows`` gathers in pieces and hands pages back between them; the answer is ``np.take`` (reference:
+    numpy itself) for 2-d and 1-d memory-mapped arrays, any order, repeats included."""
+    from entivec.tasks.train.workset import take_rows
+
+    rng = np.random.default_rng(11)
+    dense = rng.normal(size=(5_000, 3)).astype(np.float32)
+    y = rng.normal(size=5_000)
+    np.save(tmp_path / "dense.npy", dense)
+    np.save(tmp_path / "y.npy", y)
+    mapped_dense = np.load(tmp_path / "dense.npy", mmap_mode="r")
+    mapped_y = np.load(tmp_path / "y.npy", mmap_mode="r")
+    at = rng.integers(0, 5_000, size=1_234)
+    assert np.array_equal(take_rows(mapped_dense, at, rows=100), np.take(dense, at, axis=0))
+    assert np.array_equal(take_rows(mapped_y, at, rows=7), np.take(y, at))
+    assert take_rows(mapped_y, np.zeros(0, dtype=np.int64)).shape == (0,)

@@ -34,7 +34,7 @@ from entivec.tasks.train.trainer import (
     default_threads,
     epoch_budget,
 )
-from entivec.tasks.train.workset import WorkingSet, release
+from entivec.tasks.train.workset import WorkingSet, release, take_rows
 
 BLOCK_ROWS = 1 << 18
 
@@ -78,8 +78,8 @@ def fit_from_working_set(
     ids_all, dense_all, y_all = ws.arrays("train")
     n_all = len(y_all)
     valid_at = _valid_positions(n_all, training.validation_fraction, max_valid_rows, training.seed)
-    valid_inputs = EncodedInputs(np.take(ids_all, valid_at, axis=0), np.take(dense_all, valid_at, axis=0))
-    valid_y = np.take(y_all, valid_at).astype(np.float64)
+    valid_inputs = EncodedInputs(take_rows(ids_all, valid_at), take_rows(dense_all, valid_at))
+    valid_y = take_rows(y_all, valid_at).astype(np.float64)
     if task == "regression":
         shift, scale = _target_scale(y_all, valid_at)
         rate = None
