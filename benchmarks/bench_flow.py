@@ -32,10 +32,9 @@ def plain_steps(module):
         obj for obj in vars(module).values()
         if isinstance(obj, types.ModuleType) and obj.__name__.startswith("entivec.tasks.")
     ]
-    for owner in owners:  # tasks a module makes on first use (its __getattr__), so that they can be swapped too
-        for lazy in ("ingest", "record_move_task", "publish_version_report_task"):
-            if "__getattr__" in vars(owner):
-                getattr(owner, lazy, None)
+    for owner in owners:  # tasks a module makes on first use (entivec.lazytasks), so that they are swapped too
+        for lazy in vars(owner).get("LAZY_TASKS", ()):
+            getattr(owner, lazy)
     saved = [(owner, name, obj) for owner in owners for name, obj in vars(owner).items() if isinstance(obj, Task)]
     for owner, name, obj in saved:
         setattr(owner, name, obj.fn)

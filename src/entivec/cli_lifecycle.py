@@ -11,20 +11,9 @@ from rich.table import Table
 from rich.text import Text
 
 from entivec.cli_output import FORMAT_HELP, Format
+from entivec.cli_read import _base
 
 EXIT_REFUSED = 1  # the gate said no: not an input error, but not a success either
-
-
-def _base(reads_registry: bool = False):
-    """The application module (imported when a command runs: entivec.cli imports this module while it is itself
-    being imported). A command that only reads the registry reads a SQLite store directly (``store.direct``)."""
-    from entivec import cli
-
-    if reads_registry:
-        from entivec.tasks.lifecycle.store import read_directly
-
-        read_directly()
-    return cli
 
 
 def _checks_table(frame, title: str) -> Table:

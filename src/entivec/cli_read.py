@@ -16,8 +16,9 @@ from entivec.cli_output import FORMAT_HELP, Format
 VERDICT_STYLES = {"pass": "green", "fail": "bold red", "forced": "yellow", "FAILED": "bold red"}
 
 
-def _base(reads_registry: bool = True):
-    """The application module; a command that only reads the registry reads a SQLite store directly."""
+def _base(reads_registry: bool = False):
+    """The application module, imported when a command runs (``entivec.cli`` imports the command modules while
+    it is itself being imported). A command that only reads the registry reads a SQLite store directly."""
     from entivec import cli
 
     if reads_registry:
@@ -37,7 +38,7 @@ def versions(
     from entivec.cli_output import emit, plain
     from entivec.tasks.lifecycle import registry
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     found = cli._run(lambda: registry.list_versions(name))
     aliases = cli._run(lambda: registry.aliases_of(name))
     by_version: dict[str, list[str]] = {}
@@ -102,7 +103,7 @@ def runs(
     from entivec.cli_output import emit, strip_markdown
     from entivec.tasks.lifecycle.runlog import run_log
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     frame = cli._run(lambda: run_log(name, limit))
     frame["note"] = frame["note"].map(strip_markdown)
     if fmt is not Format.table:
@@ -127,7 +128,7 @@ def export(
     from entivec.tasks.apply.export import export_source, export_vector_set
     from entivec.tasks.lifecycle import registry
 
-    cli = _base()
+    cli = _base(reads_registry=True)
     loaded = cli._run(lambda: registry.load_version(name, version))
     source = export_source(name, loaded.version, loaded.run_id, loaded.vector_set, version,
                            cli._run(lambda: registry.aliases_of(name)))
@@ -142,7 +143,7 @@ def check(spec: Annotated[Path, typer.Argument(help="The dataset spec (YAML) to 
     """
     from entivec.tasks.ingest import read
 
-    cli = _base(reads_registry=False)
+    cli = _base()
 
     def headers():
         from entivec.schemas.spec import load_spec, resolve_source

@@ -17,6 +17,7 @@ import pandas as pd
 import pyarrow as pyarrow_lib
 import pyarrow.parquet as pq
 
+from entivec.lazytasks import tasks_on_first_use
 from entivec.schemas.spec import (
     ROW_ID,
     FillRule,
@@ -361,16 +362,7 @@ def _ingest(spec: Spec, spec_path: str | Path) -> tuple[pd.DataFrame, list[str]]
     return read_source(spec, spec_path)
 
 
-def __getattr__(attribute: str):
-    """``ingest``: read_source as a Prefect task, made when a flow first asks for it (``entivec check`` reads
-    headers without loading Prefect). An OSError with an errno (I/O trouble) is retried, bad input is not. Cache
-    keys would hash whole frames; every step here is cheap to redo, so nothing is cached."""
-    if attribute == "ingest":
-        from prefect import task
-        from prefect.cache_policies import NO_CACHE
-
-        made = task(name="ingest", retries=2, retry_delay_seconds=2, retry_condition_fn=retry_on_io_only,
-                    cache_policy=NO_CACHE)(_ingest)
-        globals()[attribute] = made
-        return made
-    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")
+# ``ingest``: read_source as a Prefect task, made when a flow first asks for it (``entivec check`` reads headers
+# without loading Prefect). An OSError with an errno (I/O trouble) is retried, bad input is not.
+__getattr__ = tasks_on_first_use(globals(), ingest=(_ingest, {
+    "name": "ingest", "retries": 2, "retry_delay_seconds": 2, "retry_condition_fn": retry_on_io_only}))

@@ -36,6 +36,7 @@ from typing import Any
 
 import pandas as pd
 
+from entivec.lazytasks import tasks_on_first_use
 from entivec.tasks.lifecycle import registry
 from entivec.tasks.lifecycle.stamps import now_iso, operator
 
@@ -403,17 +404,9 @@ def record_move(
 
 
 # No retries: a move is not blindly repeated; the repair step settles an interrupted one.
-def __getattr__(attribute: str):
-    """``record_move_task``: ``record_move`` as a Prefect task, made when a flow first asks for it, so reading the
-    history does not load Prefect."""
-    if attribute == "record_move_task":
-        from prefect import task
-        from prefect.cache_policies import NO_CACHE
-
-        made = task(name="record-alias-move", cache_policy=NO_CACHE)(record_move)
-        globals()[attribute] = made
-        return made
-    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")
+# ``record_move_task``: ``record_move`` as a Prefect task, made when a flow first asks for it, so reading the
+# history does not load Prefect.
+__getattr__ = tasks_on_first_use(globals(), record_move_task=(record_move, {"name": "record-alias-move"}))
 
 
 def history(name: str, *, repair: bool = True) -> list[AuditEntry]:

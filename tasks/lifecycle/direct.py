@@ -169,7 +169,7 @@ class DirectReader:
         if not path.is_file():
             raise NotDirect(f"{path} does not exist yet")
         try:
-            self._db = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0)
+            self._db = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0, check_same_thread=False)
             for table, wanted in COLUMNS.items():
                 present = {row[1] for row in self._db.execute(f'PRAGMA table_info("{table}")')}
                 if not wanted <= present:

@@ -210,7 +210,19 @@ def answer_types() -> tuple[type[BaseException], ...]:
 
 
 DIRECT_VARIABLE = "ENTIVEC_DIRECT_READS"  # "0" sends every read through MLflow
-_direct = {"on": False}
+_direct: dict[str, Any] = {"on": False, "readers": {}}  # readers: one open DirectReader per store file
+
+
+def _reader(path: Path) -> direct.DirectReader | None:
+    """The direct reader of ``path`` opened once per process (its connection sees every committed write), or
+    None when the file cannot be read directly."""
+    key = str(path)
+    if key not in _direct["readers"]:
+        try:
+            _direct["readers"][key] = direct.DirectReader(path)
+        except direct.NotDirect:
+            return None  # not remembered: the file may exist, or be migrated, by the next call
+    return _direct["readers"][key]
 
 
 def read_directly(on: bool = True) -> None:
@@ -218,6 +230,10 @@ def read_directly(on: bool = True) -> None:
     turn it on, unless ``ENTIVEC_DIRECT_READS=0``. Writes, and reads the direct reader cannot answer exactly,
     still go through MLflow."""
     _direct["on"] = on and os.environ.get(DIRECT_VARIABLE, "1").strip() not in ("0", "false", "no")
+    if not _direct["on"]:
+        for reader in _direct["readers"].values():
+            reader.close()
+        _direct["readers"].clear()
 
 
 class Client:
@@ -234,10 +250,7 @@ class Client:
         self._reader: direct.DirectReader | None = None
         path = direct.sqlite_path(uri)
         if _direct["on"] and path is not None and uri == registry_uri:
-            try:
-                self._reader = direct.DirectReader(path)
-            except direct.NotDirect:
-                self._reader = None
+            self._reader = _reader(path)
 
     @property
     def _client(self) -> Any:

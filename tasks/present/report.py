@@ -27,6 +27,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
+from entivec.lazytasks import tasks_on_first_use  # noqa: E402
 from entivec.schemas.vector_set import column_file_stem  # noqa: E402
 from entivec.settings import project_home, tracking_uri  # noqa: E402
 from entivec.tasks.apply.outputs import write_text_atomically  # noqa: E402
@@ -419,17 +420,10 @@ def publish_version_report(name: str, version: str, out: str | Path | None = Non
     return PublishedReport(path, mv.run_id, link)
 
 
-def __getattr__(attribute: str):
-    """``publish_version_report_task``: the publish step as a Prefect task, made when a flow first asks for it,
-    so ``entivec report`` does not load Prefect."""
-    if attribute == "publish_version_report_task":
-        from prefect import task
-        from prefect.cache_policies import NO_CACHE
-
-        made = task(name="publish-version-report", cache_policy=NO_CACHE, retries=1)(publish_version_report)
-        globals()[attribute] = made
-        return made
-    raise AttributeError(f"module {__name__!r} has no attribute {attribute!r}")
+# ``publish_version_report_task``: the publish step as a Prefect task, made when a flow first asks for it, so
+# ``entivec report`` does not load Prefect.
+__getattr__ = tasks_on_first_use(globals(), publish_version_report_task=(
+    publish_version_report, {"name": "publish-version-report", "retries": 1}))
 
 
 # --- the comparison of two versions -----------------------------------------------------------------------------
